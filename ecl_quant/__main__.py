@@ -1,0 +1,7 @@
+"""``python -m ecl_quant`` runs the command-line interface."""
+
+import sys
+
+from .cli import main
+
+sys.exit(main())

@@ -1,0 +1,101 @@
+"""Atomic file output: write to a temporary file beside the target, then rename.
+
+A reader never sees a half-written file, and an existing file is replaced only when the
+new one is complete. Low-level OSErrors become :class:`~ecl_quant.errors.OutputError`.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import os
+import tempfile
+from collections.abc import Iterator
+from pathlib import Path
+from typing import IO, Any
+
+from .errors import OutputError
+
+__all__ = ["atomic_write", "write_text_atomic", "write_json_atomic", "sha256_file", "ensure_dir"]
+
+
+@contextlib.contextmanager
+def atomic_write(path: str | Path, mode: str = "w", *, encoding: str | None = "utf-8") -> Iterator[IO[Any]]:
+    """Open a temporary file for writing that replaces ``path`` on success.
+
+    Parameters
+    ----------
+    path : str or Path
+        Final destination.
+    mode : {"w", "wb"}
+        Text or binary.
+    """
+    path = Path(path)
+    binary = "b" in mode
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    except OSError as err:
+        raise OutputError(f"cannot write here ({err.strerror}); choose another --out folder",
+                          path=path.parent) from err
+    try:
+        with os.fdopen(fd, mode, encoding=None if binary else encoding) as fh:
+            yield fh
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except OSError as err:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise OutputError(f"writing failed ({err.strerror or err}); nothing was replaced",
+                          path=path) from err
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+
+
+def write_text_atomic(path: str | Path, text: str) -> None:
+    """Write ``text`` to ``path`` atomically (UTF-8)."""
+    with atomic_write(path, "w") as fh:
+        fh.write(text)
+
+
+def write_json_atomic(path: str | Path, obj: Any) -> None:
+    """Write ``obj`` as indented JSON to ``path`` atomically."""
+    write_text_atomic(path, json.dumps(obj, indent=2, sort_keys=False, default=_json_default) + "\n")
+
+
+def _json_default(obj: Any) -> Any:
+    import numpy as np
+
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating):
+        return float(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+
+
+def sha256_file(path: str | Path, *, chunk_bytes: int = 1 << 20) -> str:
+    """SHA-256 hex digest of a file, read in chunks."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while block := fh.read(chunk_bytes):
+            h.update(block)
+    return h.hexdigest()
+
+
+def ensure_dir(path: str | Path) -> Path:
+    """Create a folder (and parents); an OSError becomes OutputError."""
+    path = Path(path)
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise OutputError(f"cannot create folder ({err.strerror})", path=path) from err
+    if not os.access(path, os.W_OK):
+        raise OutputError("folder is not writable; choose another --out", path=path)
+    return path
