@@ -19,7 +19,8 @@ from .errors import (
     SpotError,
     TimingWarning,
 )
-from .frames import Frame
+from .frames import ExifInfo, Frame, Recording, iter_frames, open_recording, read_exif
+from .radiometry import LinearSettings, MasterDark, load_dark, master_dark
 from .transfer import parse_transfer
 
 __all__ = [
@@ -34,5 +35,14 @@ __all__ = [
     "SpotError",
     "TimingWarning",
     "Frame",
+    "ExifInfo",
+    "Recording",
+    "open_recording",
+    "iter_frames",
+    "read_exif",
+    "LinearSettings",
+    "MasterDark",
+    "master_dark",
+    "load_dark",
     "parse_transfer",
 ]
