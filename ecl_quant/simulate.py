@@ -191,10 +191,21 @@ def spot_profile(rho_px: ArrayLike, *, radius_px: float, edge_px: float) -> NDAr
 def spot_flux_px(radius_px: float, edge_px: float) -> float:
     """Integral of :func:`spot_profile` over the plane, in pixels (area-equivalent).
 
-    ``2 pi int_0^inf rho w(rho) d rho = pi (R^2 + pi^2 s^2 / 3)`` (Fermi-Dirac integral,
-    Sommerfeld expansion; exact up to terms of order ``exp(-R/s)``).
+    ``2 pi int_0^inf rho w(rho) d rho = -2 pi s^2 Li2(-exp(R/s))``
+    ``= pi (R^2 + pi^2 s^2 / 3) + 2 pi s^2 Li2(-exp(-R/s))`` (Fermi-Dirac integral of
+    order 1, with the dilogarithm inversion formula); the last term is summed as the
+    alternating series ``sum_k (-1)^k exp(-k R/s) / k^2``.
     """
-    return math.pi * (radius_px**2 + math.pi**2 * edge_px**2 / 3.0)
+    x = radius_px / edge_px
+    q = math.exp(-x)
+    li2, term_k = 0.0, 1
+    while True:
+        term = (-1.0) ** term_k * q**term_k / term_k**2
+        li2 += term
+        if abs(term) < 1e-18 or term_k > 100_000:
+            break
+        term_k += 1
+    return math.pi * (radius_px**2 + math.pi**2 * edge_px**2 / 3.0) + 2.0 * math.pi * edge_px**2 * li2
 
 
 def spot_flux_within(r_px: float, *, radius_px: float, edge_px: float) -> float:
@@ -375,6 +386,8 @@ class SimulationSpec:
         for name in ("fps", "exposure_s", "gain_e_per_fs", "radius_px", "edge_px"):
             if not getattr(self, name) > 0:
                 raise InputFormatError(f"{name} must be > 0, got {getattr(self, name)!r}")
+        if self.radius_px < 2 * self.edge_px:
+            raise InputFormatError("edge_px must be at most radius_px / 2 (a disk, not a blur)")
         for name in ("read_noise_fs", "dark_level_fs", "ambient_fs", "drift_px"):
             if getattr(self, name) < 0:
                 raise InputFormatError(f"{name} must be >= 0, got {getattr(self, name)!r}")
@@ -947,7 +960,8 @@ def _write_stills(
         if spec.encoding == "tiff16":
             import cv2
 
-            ok, buf = cv2.imencode(".tif", _encode_linear16(lin)[..., ::-1].copy())
+            ok, buf = cv2.imencode(".tif", _encode_linear16(lin)[..., ::-1].copy(),
+                                   [cv2.IMWRITE_TIFF_COMPRESSION, 1])  # uncompressed
             if not ok:  # pragma: no cover - OpenCV refuses only on broken builds
                 raise OutputError("OpenCV could not encode a 16-bit TIFF", path=path)
             with atomic_write(path, "wb") as fh:
