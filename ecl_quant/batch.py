@@ -908,3 +908,701 @@ def _iter_dask(func: Callable[[Any], Any], items: Sequence[Any],
     finally:
         if own:
             client.close()
+
+
+# ------------------------------------------------------------------ flags and cautions
+
+#: Shown at the top of every report and printed after every batch.
+CAUTIONS = (
+    "Results are research measurements, not a certified analytical method.",
+    "Decisions about drinking water, food or health must rest on accredited laboratory "
+    "methods and on the local regulations and codes.",
+    "Reagents used in ECL (luminophores, strong oxidants, amine co-reactants) are "
+    "hazardous: follow their safety data sheets and local rules.",
+)
+
+#: Field QC flags of a recording and what each one means.
+QC_FLAGS: dict[str, str] = {
+    "saturated": "Some spot pixels reached the top code in at least one frame, so light was "
+                 "lost; those spots are left out of the calibration and the results. Lower "
+                 "the exposure or ISO, or dilute the sample.",
+    "drifted": "The card moved by more than the drift limit during the recording (hand "
+               "tremor). Frames were registered before integration; check the overlay.",
+    "exposure_changed": "The exposure changed during the recording (auto-exposure), which "
+                        "breaks integration over time. Lock exposure and ISO on the camera.",
+    "ambient_light": "The scene outside the spots is bright (light leaking into the dark "
+                     "box); background subtraction takes it out but the noise goes up. "
+                     "Shield the card from room light.",
+    "blurred": "The spot edges are soft (low variance of the Laplacian on the spot "
+               "projection): the camera was out of focus or moved within an exposure. "
+               "Refocus and hold the camera still.",
+    "low_snr": "A spot's signal-to-noise ratio is below the limit; its reading is noisy.",
+    "no_pulse": "No ECL pulse was detected on a spot (expected for blanks and zero "
+                "standards).",
+}
+
+#: Flags of a quantified result.
+RESULT_FLAGS: dict[str, str] = {
+    "below_lod": "The concentration is below the limit of detection: report it as "
+                 "\"not detected\" (below LOD), not as a number.",
+    "below_loq": "Between the limits of detection and quantification: detected, but the "
+                 "number is not precise enough to quantify.",
+    "above_range": "The reading is above the highest standard: the calibration is not "
+                   "known to hold there; dilute the sample and measure again.",
+    "below_range": "The reading is below the lowest standard above zero: the value is an "
+                   "extrapolation.",
+}
+
+
+@dataclass(frozen=True)
+class QCLimits:
+    """Limits of the field QC flags.
+
+    Attributes
+    ----------
+    drift_limit_px : float
+        ``drifted`` when the card moves more than this (largest shift from the first
+        frame), px.
+    ambient_limit : float
+        ``ambient_light`` when the median linear level around the spots is above this
+        fraction of full scale (per frame).
+    blur_limit : float
+        ``blurred`` when the spot sharpness score (variance of the Laplacian of the
+        contrast-normalised spot projection, times the spot radius in px) is below this.
+    min_snr : float
+        ``low_snr`` for spots of standards above zero and of unknowns below this SNR.
+    """
+
+    drift_limit_px: float = 2.0
+    ambient_limit: float = 0.15
+    blur_limit: float = 0.05
+    min_snr: float = 5.0
+
+
+def software_versions() -> dict[str, str]:
+    """Versions of Python, ecl_quant and the libraries that shape the numbers."""
+    from importlib import metadata
+
+    from . import __version__
+
+    out = {"ecl_quant": __version__, "python": sys.version.split()[0]}
+    for dist in ("numpy", "scipy", "pandas", "opencv-python-headless", "av", "Pillow",
+                 "scikit-image", "matplotlib", "statsmodels", "dask", "distributed"):
+        try:
+            out[dist] = metadata.version(dist)
+        except metadata.PackageNotFoundError:
+            continue
+    return out
+
+
+# ------------------------------------------------------------------ settings and results
+
+RESPONSES = ("integral", "peak")
+_RESPONSE_SE = {"integral": "integral_se", "peak": "peak_se"}
+MARKER_NAME = ".ecl-quant-batch"
+RECORDINGS_DIR = "recordings"
+_FLAG_ORDER = ("saturated", "drifted", "exposure_changed", "ambient_light", "blurred",
+               "low_snr", "no_pulse")
+
+
+@dataclass(frozen=True)
+class BatchSettings:
+    """Options of a batch run (the ``batch`` subcommand's flags).
+
+    Attributes
+    ----------
+    out_dir : Path
+        Output folder.
+    workers : int or None
+        Local processes (1 = in this process); None = one per CPU.
+    dask : str or None
+        dask.distributed scheduler address; replaces the local pool.
+    model : str
+        Calibration model (see :func:`ecl_quant.calibration.fit_calibration`).
+    response : {"integral", "peak"}
+        Figure of merit calibrated against concentration.
+    units : str
+        Concentration units of the manifest (labels only).
+    level : float
+        Confidence level of intervals and bands.
+    force : bool
+        Measure every recording again, ignoring the cache.
+    channel, transfer : str
+        Defaults for rows without their own.
+    allow_outside : bool
+        Accept paths outside the manifest's folder.
+    weights : str or None
+        Calibration weights (None, "1/x2", "1/y2", "1/var").
+    qc : QCLimits
+    measure_options : dict
+        Further MeasureSettings fields, the same for every recording.
+    progress : bool
+        Progress bar and status lines on stderr.
+    """
+
+    out_dir: Path
+    workers: int | None = None
+    dask: str | None = None
+    model: str = "linear"
+    response: str = "integral"
+    units: str = "umol/L"
+    level: float = 0.95
+    force: bool = False
+    channel: str = "red"
+    transfer: str = "auto"
+    allow_outside: bool = False
+    weights: str | None = None
+    qc: QCLimits = field(default_factory=QCLimits)
+    measure_options: Mapping[str, Any] = field(default_factory=dict)
+    progress: bool = True
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "out_dir", Path(self.out_dir))
+        object.__setattr__(self, "measure_options", dict(self.measure_options))
+        if self.response not in RESPONSES:
+            raise InputFormatError(f"--response {self.response!r}: use integral or peak")
+        if not 0.5 <= self.level < 1:
+            raise InputFormatError(f"--level {self.level:g}: give a level in [0.5, 1), e.g. 0.95")
+        if self.channel not in CHANNELS:
+            raise InputFormatError(f"--channel {self.channel!r}: use one of {', '.join(CHANNELS)}")
+        parse_transfer(self.transfer)
+        if self.workers is not None and self.workers < 1:
+            raise InputFormatError(f"--workers {self.workers}: give 1 or more")
+
+
+@dataclass(frozen=True)
+class RecordingOutcome:
+    """What happened to one recording.
+
+    Attributes
+    ----------
+    rec_id, path_text : str
+    status : {"measured", "cached", "failed"}
+    key : str or None
+        Cache key (SHA-256 of the inputs and parameters).
+    elapsed_s : float
+    error : str or None
+        Exception class name when failed.
+    message : str or None
+    detail : str
+        Traceback text when failed (shown with --debug).
+    warnings : tuple of str
+    """
+
+    rec_id: str
+    path_text: str
+    status: str
+    key: str | None = None
+    elapsed_s: float = 0.0
+    error: str | None = None
+    message: str | None = None
+    detail: str = ""
+    warnings: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class BatchResult:
+    """Outcome of :func:`run_batch`.
+
+    Attributes
+    ----------
+    out_dir : Path
+    exit_code : int
+        0 every recording measured and results written; 1 partial (some recordings or
+        rows failed, listed in errors.csv); 2 no calibration could be made.
+    outcomes : tuple of RecordingOutcome
+        In manifest order.
+    results : DataFrame
+        results.csv.
+    errors : DataFrame
+        errors.csv.
+    qc : DataFrame
+        qc.csv.
+    measurements : DataFrame
+        measurements.csv.
+    fatal : str or None
+        Why no results could be made (exit code 2).
+    provenance : dict
+        batch.json.
+    """
+
+    out_dir: Path
+    exit_code: int
+    outcomes: tuple[RecordingOutcome, ...]
+    results: Any
+    errors: Any
+    qc: Any
+    measurements: Any
+    fatal: str | None = None
+    provenance: dict[str, Any] = field(default_factory=dict)
+
+    def to_frame(self) -> Any:
+        """The results table (pandas)."""
+        return self.results
+
+    @property
+    def n_failed(self) -> int:
+        """Recordings that could not be measured."""
+        return sum(o.status == "failed" for o in self.outcomes)
+
+
+# ------------------------------------------------------------------ the worker
+
+
+@dataclass(frozen=True)
+class _Job:
+    rec_id: str
+    path: str
+    path_text: str
+    dark: str | None
+    spots_file: str | None
+    channel: str
+    transfer: str
+    folder: str
+    force: bool
+    batch_id: str
+    measure_options: Mapping[str, Any]
+
+
+def _profile_path(transfer: str) -> str | None:
+    spec = parse_transfer(transfer)
+    return spec.profile_path if spec.kind == "profile" else None
+
+
+def _key_parameters(job: _Job) -> dict[str, Any]:
+    from . import __version__
+
+    return {"ecl_quant": __version__, "channel": job.channel,
+            "transfer": "profile" if _profile_path(job.transfer) else job.transfer,
+            "measure_options": dict(job.measure_options)}
+
+
+def _job_key(job: _Job) -> str:
+    return recording_key(job.path, parameters=_key_parameters(job),
+                         extra_files={"dark": job.dark, "spots": job.spots_file,
+                                      "profile": _profile_path(job.transfer)})
+
+
+def _cache_hit(folder: Path, key: str) -> bool:
+    try:
+        done = json.loads((folder / "done.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    if done.get("key") != key:
+        return False
+    return all((folder / name).is_file() for name in done.get("files", ()))
+
+
+def _run_job(job: _Job) -> RecordingOutcome:
+    """Measure one recording into its folder, or find it in the cache (runs in a worker)."""
+    import traceback
+
+    t0 = time.perf_counter()
+    caught: list[str] = []
+    with warnings.catch_warnings(record=True) as records:
+        warnings.simplefilter("always")
+        try:
+            key = _job_key(job)
+            folder = Path(job.folder)
+            if not job.force and _cache_hit(folder, key):
+                return RecordingOutcome(job.rec_id, job.path_text, "cached", key=key,
+                                        elapsed_s=time.perf_counter() - t0)
+            _measure_into(job, key, folder)
+            status = "measured"
+        except Exception as err:  # every failure is reported; the batch goes on
+            caught = _warning_texts(records)
+            return RecordingOutcome(
+                job.rec_id, job.path_text, "failed", elapsed_s=time.perf_counter() - t0,
+                error=type(err).__name__,
+                message=(err.reason if isinstance(err, EclQuantError) else str(err)) or repr(err),
+                detail=traceback.format_exc(), warnings=tuple(caught))
+        caught = _warning_texts(records)
+    return RecordingOutcome(job.rec_id, job.path_text, status, key=key,
+                            elapsed_s=time.perf_counter() - t0, warnings=tuple(caught))
+
+
+def _warning_texts(records: Iterable[warnings.WarningMessage]) -> list[str]:
+    out: list[str] = []
+    for w in records:
+        text = f"{w.category.__name__}: {w.message}"
+        if text not in out:
+            out.append(text)
+    return out
+
+
+def _measure_into(job: _Job, key: str, folder: Path) -> None:
+    """Measure, write the outputs into a temporary folder, then swap it into place."""
+    import shutil
+
+    token = hashlib.sha256(f"{os.getpid()}-{time.time_ns()}".encode()).hexdigest()[:8]
+    tmp = folder.parent / f".{folder.name}.partial-{os.getpid()}-{token}"
+    old = folder.parent / f".{folder.name}.old-{os.getpid()}-{token}"
+    tmp.mkdir(parents=True)
+    try:
+        result = _measure_recording(job)
+        files = _write_recording_outputs(result, tmp)
+        qc = recording_qc_metrics(result)
+        _write_json(tmp / "qc.json", qc)
+        files.append("qc.json")
+        _write_json(tmp / "done.json", {
+            "key": key, "recording": job.rec_id, "path": job.path_text,
+            "parameters": _key_parameters(job), "files": sorted(files),
+            "batch_id": job.batch_id,
+            "measured_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        })
+        if folder.exists():
+            os.rename(folder, old)
+        os.rename(tmp, folder)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    shutil.rmtree(old, ignore_errors=True)
+
+
+def _write_json(path: Path, obj: Any) -> None:
+    from ._io import write_json_atomic
+
+    write_json_atomic(path, obj)
+
+
+# ------------------------------------------------------------------ the batch
+
+
+def _prepare_out_dir(out: Path, *, force: bool) -> None:
+    from ._io import ensure_dir
+
+    if out.exists() and not out.is_dir():
+        raise OutputError("--out is a file; give a folder", path=out)
+    if out.is_dir() and not (out / MARKER_NAME).exists():
+        visible = [p for p in out.iterdir() if not p.name.startswith(".")]
+        if visible and not force:
+            raise OutputError(
+                "folder holds files that are not from a batch; choose an empty or new --out "
+                "folder, or pass --force to write into it", path=out)
+    ensure_dir(out)
+    ensure_dir(out / RECORDINGS_DIR)
+
+
+def _clean_partials(rec_root: Path) -> None:
+    import shutil
+
+    for p in rec_root.glob(".*"):
+        if ".partial-" in p.name or ".old-" in p.name:
+            shutil.rmtree(p, ignore_errors=True)
+
+
+def run_batch(manifest: str | Path | Manifest, settings: BatchSettings, *,
+              finalize: Callable[[Path], Any] | None = None,
+              client: Any | None = None,
+              status: Callable[[str], None] | None = None) -> BatchResult:
+    """Measure every recording of a manifest, calibrate, quantify; write the outputs.
+
+    Parameters
+    ----------
+    manifest : str, Path or Manifest
+        The manifest CSV (validated completely before any work) or a validated one.
+    settings : BatchSettings
+    finalize : callable, optional
+        Called with the output folder at the end while the folder is still locked
+        (the CLI writes report.html here).
+    client : distributed.Client, optional
+        A connected dask client to use instead of ``settings.dask``.
+    status : callable, optional
+        Receives one line per recording as it finishes (default: stderr via tqdm when
+        ``settings.progress``).
+
+    Returns
+    -------
+    BatchResult
+        ``exit_code`` 0 (all fine), 1 (partial: see errors.csv) or 2 (no calibration).
+
+    Raises
+    ------
+    ManifestError
+        When the manifest has problems (nothing is run).
+    OutputError
+        When the output folder is locked by another batch or not writable.
+    """
+    from ._io import write_text_atomic
+
+    man = manifest if isinstance(manifest, Manifest) else read_manifest(
+        manifest, allow_outside=settings.allow_outside)
+    out = settings.out_dir.expanduser().resolve()
+    _prepare_out_dir(out, force=settings.force)
+    rec_root = out / RECORDINGS_DIR
+    started = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    batch_id = hashlib.sha256(f"{os.getpid()}-{time.time_ns()}".encode()).hexdigest()[:12]
+    with OutputLock(out) as lock:
+        write_text_atomic(out / MARKER_NAME, "ecl-quant batch output folder\n")
+        _clean_partials(rec_root)
+        if settings.force:
+            _remove_unlisted(rec_root, {r.rec_id for r in man.recordings})
+        jobs = [
+            _Job(rec_id=r.rec_id, path=str(r.path), path_text=r.path_text,
+                 dark=None if r.dark is None else str(r.dark),
+                 spots_file=None if r.spots_file is None else str(r.spots_file),
+                 channel=r.channel or settings.channel,
+                 transfer=r.transfer or str(parse_transfer(settings.transfer)),
+                 folder=str(rec_root / r.rec_id), force=settings.force, batch_id=batch_id,
+                 measure_options=settings.measure_options)
+            for r in man.recordings
+        ]
+        outcomes = _execute(jobs, settings, client=client, status=status)
+        tables = _assemble(man, outcomes, rec_root, settings)
+        cal, cal_error = _calibrate(tables["measurements"], settings, out)
+        results = _quantify(tables, cal, settings)
+        qc = _qc_with_results(tables, cal, settings)
+        errors = tables["errors"]
+        counts = {
+            "recordings": len(outcomes),
+            "measured_ok": sum(o.status != "failed" for o in outcomes),
+            "measured_now": sum(o.status == "measured" for o in outcomes),
+            "from_cache": sum(o.status == "cached" for o in outcomes),
+            "failed": sum(o.status == "failed" for o in outcomes),
+            "error_rows": len(errors),
+            "unknowns": len(results),
+        }
+        exit_code = 2 if cal is None else (1 if len(errors) else 0)
+        _write_csv(out / "measurements.csv", tables["measurements"])
+        _write_csv(out / "qc.csv", qc)
+        _write_csv(out / "results.csv", results)
+        _write_csv(out / "errors.csv", errors)
+        if cal is None and (out / "calibration.json").exists():
+            (out / "calibration.json").unlink()
+        profiles = sorted({p for j in jobs if (p := _profile_path(j.transfer))})
+        provenance = {
+            "manifest": str(man.path),
+            "started": started,
+            "finished": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+            "batch_id": batch_id,
+            "parameters": {
+                "units": settings.units, "level": settings.level, "model": settings.model,
+                "response": settings.response, "weights": settings.weights,
+                "channel": settings.channel, "transfer": settings.transfer,
+                "allow_outside": settings.allow_outside, "force": settings.force,
+                "execution": (f"dask {settings.dask}" if settings.dask else
+                              "dask client" if client is not None else
+                              f"local, {_worker_count(settings.workers, max(len(jobs), 1))} "
+                              "worker(s)"),
+            },
+            "measure_settings": _measure_settings_doc(jobs),
+            "qc_limits": dataclasses.asdict(settings.qc),
+            "versions": software_versions(),
+            "profiles": profiles,
+            "counts": counts,
+            "calibration_error": cal_error,
+            "lock_taken_over": lock.took_over,
+            "recordings": [dataclasses.asdict(o) | {"detail": None} for o in outcomes],
+        }
+        _write_json(out / "batch.json", provenance)
+        if finalize is not None:
+            finalize(out)
+    return BatchResult(out_dir=out, exit_code=exit_code, outcomes=tuple(outcomes),
+                       results=results, errors=errors, qc=qc,
+                       measurements=tables["measurements"],
+                       fatal=None if cal is not None else cal_error, provenance=provenance)
+
+
+def _remove_unlisted(rec_root: Path, keep: set[str]) -> None:
+    import shutil
+
+    for p in rec_root.iterdir():
+        if p.is_dir() and not p.name.startswith(".") and p.name not in keep:
+            shutil.rmtree(p, ignore_errors=True)
+
+
+def _write_csv(path: Path, df: Any) -> None:
+    from ._io import atomic_write
+
+    with atomic_write(path, "w") as fh:
+        df.to_csv(fh, index=False, lineterminator="\n")
+
+
+def _execute(jobs: Sequence[_Job], settings: BatchSettings, *, client: Any | None,
+             status: Callable[[str], None] | None) -> list[RecordingOutcome]:
+    from tqdm import tqdm
+
+    n = len(jobs)
+    outcomes: list[RecordingOutcome | None] = [None] * n
+    bar = tqdm(total=n, desc="recordings", unit="rec", file=sys.stderr,
+               disable=not settings.progress, leave=False, dynamic_ncols=True)
+
+    def say(line: str) -> None:
+        if status is not None:
+            status(line)
+        elif settings.progress:
+            tqdm.write(line, file=sys.stderr)
+
+    try:
+        done = 0
+        for i, res, err in iter_completed(_run_job, jobs, workers=settings.workers,
+                                          dask=client if client is not None else settings.dask):
+            job = jobs[i]
+            if err is not None:  # the worker itself died (crash, killed, lost)
+                res = RecordingOutcome(job.rec_id, job.path_text, "failed",
+                                       error=type(err).__name__,
+                                       message=f"worker failed: {err}" if str(err)
+                                       else f"worker failed ({type(err).__name__})")
+            outcomes[i] = res
+            done += 1
+            bar.update(1)
+            text = {"measured": "measured", "cached": "cached  ", "failed": "FAILED  "}[res.status]
+            line = f"[{done}/{n}] {text} {job.rec_id} ({res.elapsed_s:.1f} s)"
+            if res.status == "failed":
+                line += f": {res.error}: {res.message}"
+            say(line)
+            for w in res.warnings:
+                say(f"        {job.rec_id}: {w}")
+    finally:
+        bar.close()
+    return [o for o in outcomes if o is not None]
+
+
+# ------------------------------------------------------------------ assembling tables
+
+_MEAS_COLUMNS = ["recording", "path", "line", "sample", "role", "concentration", "spot",
+                 "response", "response_se", "integral", "integral_se", "peak",
+                 "time_to_peak_s", "snr", "saturated_frames", "used", "flags"]
+_ERR_COLUMNS = ["recording", "path", "lines", "stage", "error", "message"]
+_QC_COLUMNS = ["recording", "path", "status", "kind", "n_frames", "n_spots", "max_drift_px",
+               "blur_score", "ambient_fraction", "min_snr", "saturated_spots", "flags"]
+_RESULT_COLUMNS = ["sample", "n", "response_mean", "concentration", "se", "ci_low", "ci_high",
+                   "level", "units", "recordings", "flags"]
+
+
+def _join_flags(*groups: Iterable[str]) -> str:
+    words: list[str] = []
+    for g in groups:
+        for w in g:
+            w = w.strip()
+            if w and w not in words:
+                words.append(w)
+    known = [w for w in _FLAG_ORDER if w in words]
+    return ";".join(known + [w for w in words if w not in _FLAG_ORDER])
+
+
+def _split_flags(text: Any) -> list[str]:
+    if text is None or (isinstance(text, float) and math.isnan(text)):
+        return []
+    return [w.strip() for w in str(text).replace(",", ";").split(";") if w.strip()]
+
+
+def recording_flags(metrics: Mapping[str, Any], limits: QCLimits) -> list[str]:
+    """Recording-level QC flags from the metrics in ``qc.json`` and the limits."""
+    flags: list[str] = []
+
+    def num(key: str) -> float:
+        v = metrics.get(key)
+        try:
+            return float(v) if v is not None else math.nan
+        except (TypeError, ValueError):
+            return math.nan
+
+    if num("max_drift_px") > limits.drift_limit_px:
+        flags.append("drifted")
+    if metrics.get("exposure_changed"):
+        flags.append("exposure_changed")
+    if num("ambient_fraction") > limits.ambient_limit:
+        flags.append("ambient_light")
+    if num("blur_score") < limits.blur_limit:
+        flags.append("blurred")
+    return flags
+
+
+def _assemble(man: Manifest, outcomes: Sequence[RecordingOutcome], rec_root: Path,
+              settings: BatchSettings) -> dict[str, Any]:
+    import pandas as pd
+
+    by_id = {o.rec_id: o for o in outcomes}
+    meas: list[dict[str, Any]] = []
+    qc_rows: list[dict[str, Any]] = []
+    errs: list[dict[str, Any]] = []
+    resp_col = settings.response
+    se_col = _RESPONSE_SE[resp_col]
+    for rec in man.recordings:
+        o = by_id[rec.rec_id]
+        mrows = man.rows_of(rec)
+        lines = ";".join(str(r.line) for r in mrows)
+        if o.status == "failed":
+            errs.append({"recording": rec.rec_id, "path": rec.path_text, "lines": lines,
+                         "stage": "measure", "error": o.error, "message": o.message})
+            continue
+        folder = rec_root / rec.rec_id
+        try:
+            spots = pd.read_csv(folder / "spots.csv")
+            metrics = json.loads((folder / "qc.json").read_text(encoding="utf-8"))
+        except (OSError, ValueError) as err:
+            errs.append({"recording": rec.rec_id, "path": rec.path_text, "lines": lines,
+                         "stage": "read", "error": type(err).__name__,
+                         "message": f"cannot read the recording's outputs ({err}); run again "
+                                    "with --force"})
+            continue
+        available = [int(s) for s in spots["spot"]]
+        missing = sorted({s for r in mrows for s in (r.spots or ()) if s not in available})
+        if missing:
+            errs.append({
+                "recording": rec.rec_id, "path": rec.path_text, "lines": lines,
+                "stage": "assign", "error": "SpotError",
+                "message": f"the manifest names spot(s) {format_spot_list(tuple(missing))} but "
+                           f"{len(available)} spot(s) were found "
+                           f"({format_spot_list(tuple(available)) or 'none'}); the numbering "
+                           "cannot be trusted: give a spots file for this recording"})
+            continue
+        rec_flags = recording_flags(metrics, settings.qc)
+        by_spot = {int(r["spot"]): r for r in spots.to_dict(orient="records")}
+        rec_spot_flags: list[str] = []
+        snrs: list[float] = []
+        for row in mrows:
+            for s in (row.spots or tuple(available)):
+                sp = by_spot[s]
+                zero = row.role == "blank" or (row.concentration == 0.0)
+                own = _split_flags(sp.get("flags"))
+                if zero:
+                    own = [w for w in own if w not in ("low_snr", "no_pulse")]
+                sat = int(_num(sp.get("saturated_frames"), 0)) > 0 or "saturated" in own
+                if sat and "saturated" not in own:
+                    own.append("saturated")
+                snr = _num(sp.get("snr"))
+                if not zero and math.isfinite(snr):
+                    snrs.append(snr)
+                    if snr < settings.qc.min_snr and "low_snr" not in own:
+                        own.append("low_snr")
+                response = _num(sp.get(resp_col))
+                used = (not sat) and math.isfinite(response)
+                rec_spot_flags.extend(own)
+                meas.append({
+                    "recording": rec.rec_id, "path": rec.path_text, "line": row.line,
+                    "sample": row.sample, "role": row.role,
+                    "concentration": row.concentration, "spot": s,
+                    "response": response, "response_se": _num(sp.get(se_col)),
+                    "integral": _num(sp.get("integral")),
+                    "integral_se": _num(sp.get("integral_se")),
+                    "peak": _num(sp.get("peak")),
+                    "time_to_peak_s": _num(sp.get("time_to_peak_s")),
+                    "snr": snr, "saturated_frames": int(_num(sp.get("saturated_frames"), 0)),
+                    "used": used, "flags": _join_flags(own, rec_flags),
+                })
+        qc_rows.append({
+            "recording": rec.rec_id, "path": rec.path_text, "status": o.status,
+            "kind": metrics.get("kind"), "n_frames": metrics.get("n_frames"),
+            "n_spots": len(available), "max_drift_px": metrics.get("max_drift_px"),
+            "blur_score": metrics.get("blur_score"),
+            "ambient_fraction": metrics.get("ambient_fraction"),
+            "min_snr": min(snrs) if snrs else math.nan,
+            "saturated_spots": int(sum(int(_num(r.get("saturated_frames"), 0)) > 0
+                                       for r in by_spot.values())),
+            "flags": _join_flags(rec_flags, [w for w in rec_spot_flags if w != "no_pulse"]),
+        })
+    return {
+        "measurements": pd.DataFrame(meas, columns=_MEAS_COLUMNS),
+        "qc": pd.DataFrame(qc_rows, columns=_QC_COLUMNS),
+        "errors": pd.DataFrame(errs, columns=_ERR_COLUMNS),
+    }
+
+
+def _num(value: Any, default: float = math.nan) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        return default
+    return v if math.isfinite(v) else default
