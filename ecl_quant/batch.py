@@ -1606,3 +1606,48 @@ def _num(value: Any, default: float = math.nan) -> float:
     except (TypeError, ValueError):
         return default
     return v if math.isfinite(v) else default
+
+
+# ------------------------------------------------------------------ summary text
+
+
+def format_summary(result: BatchResult, *, units: str = "", level: float = 0.95) -> str:
+    """A plain-text summary table of a batch for the terminal."""
+    lines: list[str] = []
+    c = result.provenance.get("counts", {})
+    lines.append(f"recordings: {c.get('recordings', len(result.outcomes))}  measured now: "
+                 f"{c.get('measured_now', 0)}  from cache: {c.get('from_cache', 0)}  "
+                 f"failed: {c.get('failed', 0)}")
+    res = result.results
+    if res is not None and len(res):
+        head = ("sample", f"conc. ({units})" if units else "conc.", "SE", f"{level:.0%} CI",
+                "flags")
+        body = []
+        for r in res.to_dict(orient="records"):
+            body.append((str(r["sample"]), _g(r.get("concentration")), _g(r.get("se")),
+                         f"{_g(r.get('ci_low'))} .. {_g(r.get('ci_high'))}",
+                         str(r.get("flags") or "") if not _isnan(r.get("flags")) else ""))
+        widths = [max(len(h), *(len(b[i]) for b in body)) for i, h in enumerate(head)]
+        fmt = "  ".join(f"{{:{'<' if i in (0, 4) else '>'}{w}}}" for i, w in enumerate(widths))
+        lines.append(fmt.format(*head))
+        lines.append(fmt.format(*("-" * w for w in widths)))
+        lines.extend(fmt.format(*b) for b in body)
+    errs = result.errors
+    if errs is not None and len(errs):
+        lines.append(f"{len(errs)} problem(s), listed in {result.out_dir / 'errors.csv'}:")
+        for r in errs.to_dict(orient="records"):
+            lines.append(f"  {r['recording']}: {r['stage']}: {r['error']}: {r['message']}")
+    return "\n".join(lines)
+
+
+def _isnan(v: Any) -> bool:
+    return v is None or (isinstance(v, float) and math.isnan(v))
+
+
+def _g(v: Any) -> str:
+    if _isnan(v):
+        return "-"
+    try:
+        return f"{float(v):.4g}"
+    except (TypeError, ValueError):
+        return str(v)

@@ -39,6 +39,182 @@ def _common(p: argparse.ArgumentParser) -> None:
 # ---------------------------------------------------------------- subcommands
 # Each block: @_command def _add_<name>(sub) ... p.set_defaults(run=_run_<name>)
 # --- BEGIN COMMANDS ---
+@_command
+def _add_camera(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "camera",
+        help="EMVA 1288 photon transfer of flat/dark frames, or a device response profile "
+        "from an exposure bracket",
+        description="ecl-quant camera FOLDER [--dark FOLDER] [--out DIR]: photon transfer "
+        "(system gain, dark noise, saturation, linearity error, SNR) of flat-field pairs "
+        "listed in FOLDER/levels.csv (file,role,exposure_s[,level,photons]) or grouped by "
+        "EXIF exposure time. ecl-quant camera --bracket FOLDER --profile OUT.json "
+        "[--exposures LIST]: Debevec response curve of an 8-bit exposure bracket, saved as "
+        "a profile for --transfer profile=FILE.",
+    )
+    p.add_argument("folder", nargs="?", help="folder of flat-field frames (with levels.csv "
+                   "or EXIF exposure times)")
+    p.add_argument("--dark", metavar="FOLDER", help="folder of dark frames (same exposure "
+                   "times as the flats)")
+    p.add_argument("--out", metavar="DIR", default="camera-output",
+                   help="output folder for camera.json and plots (default camera-output)")
+    p.add_argument("--channel", choices=["auto", "mono", "red", "green", "blue"],
+                   default="auto", help="colour plane analysed (default: grey frames as "
+                   "they are, green for colour and raw)")
+    p.add_argument("--roi", metavar="X,Y,W,H", help="analyse only this region (pixels)")
+    p.add_argument("--max-code", type=float, metavar="N", help="sensor maximum code, e.g. "
+                   "4095 for 12-bit data stored in 16-bit files (default: the file's maximum)")
+    p.add_argument("--eta", type=float, metavar="QE", help="quantum efficiency 0..1, if known, "
+                   "for the sensitivity threshold in photons")
+    p.add_argument("--highpass", action="store_true",
+                   help="EMVA 1288 section 8.1 high-pass filter before DSNU/PRNU")
+    p.add_argument("--bracket", metavar="FOLDER", help="exposure bracket of a static scene "
+                   "(8-bit stills)")
+    p.add_argument("--profile", metavar="OUT.json", help="where to write the device profile")
+    p.add_argument("--exposures", metavar="LIST", help="exposure times in seconds in "
+                   "file-name order, e.g. 1/250,1/125,1/60 (default: EXIF ExposureTime)")
+    p.add_argument("--method", choices=["debevec", "robertson"], default="debevec",
+                   help="response recovery method (default debevec)")
+    _common(p)
+    p.set_defaults(run=_run_camera)
+
+
+def _run_camera(args: argparse.Namespace) -> int:
+    from . import camera
+    from .errors import InputFormatError
+
+    say = (lambda *a: None) if args.quiet else print
+    if args.bracket:
+        if args.folder:
+            raise InputFormatError("give either FOLDER (photon transfer) or --bracket, not both")
+        if not args.profile:
+            raise InputFormatError("--bracket needs --profile OUT.json (where to save it)")
+        images, times, files, (make, model) = camera.read_bracket(args.bracket,
+                                                                  exposures=args.exposures)
+        try:
+            prof = camera.profile_from_bracket(images, times, method=args.method, make=make,
+                                               model=model, sources=[f.name for f in files])
+        except EclQuantError as err:
+            raise type(err)(err.reason, path=err.path or args.bracket) from err
+        camera.save_profile(prof, args.profile)
+        mid = prof.response["green"][128]
+        say(f"device profile ({prof.method}, {len(files)} images, "
+            f"{make or 'unknown make'} {model or ''}): {args.profile}")
+        say(f"code 128 -> {mid:.4f} of full scale (sRGB would give 0.2159); "
+            f"use --transfer profile={args.profile}")
+        return 0
+    if not args.folder:
+        raise InputFormatError("give the folder of flat-field frames, or --bracket FOLDER")
+    roi = None
+    if args.roi:
+        try:
+            x, y, w, h = (int(v) for v in args.roi.split(","))
+        except ValueError:
+            raise InputFormatError(f"--roi {args.roi!r} must be X,Y,W,H in pixels") from None
+        roi = (x, y, w, h)
+    if args.eta is not None and not 0 < args.eta <= 1:
+        raise InputFormatError(f"--eta {args.eta:g} must be a quantum efficiency in (0, 1]")
+    settings = camera.PhotonTransferSettings(eta=args.eta, highpass=args.highpass)
+    result = camera.measure_photon_transfer(args.folder, dark=args.dark, channel=args.channel,
+                                            roi=roi, max_code=args.max_code, settings=settings)
+    written = camera.write_camera_outputs(result, args.out)
+    for line in result.verdict():
+        say(line)
+    for note in result.notes:
+        say(f"note: {note}")
+    say(f"wrote {', '.join(str(p) for p in written)}")
+    return 0
+
+
+@_command
+def _add_batch(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "batch", help="measure a folder of recordings, calibrate, quantify, report",
+        description="Measure every recording of a manifest (CSV: path, sample, role, "
+        "concentration, spot, dark, spots, channel, transfer), calibrate on the standards "
+        "and blanks, quantify the unknowns; write measurements.csv, calibration.json, "
+        "results.csv, errors.csv, per-recording folders and report.html. A rerun on the "
+        "same --out redoes only what is missing.")
+    p.add_argument("manifest", help="manifest CSV (paths in it are relative to it)")
+    p.add_argument("--out", metavar="DIR", default=None,
+                   help="output folder (default: batch-<manifest name> here)")
+    p.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="local worker processes (default: one per CPU; 1 = no pool)")
+    p.add_argument("--dask", metavar="ADDRESS", default=None,
+                   help="run on a dask.distributed scheduler (e.g. tcp://host:8786); "
+                   "workers must see the same paths")
+    p.add_argument("--model", default="linear",
+                   choices=["linear", "wls", "quadratic", "power", "4pl", "5pl", "auto"],
+                   help="calibration model (default: linear)")
+    p.add_argument("--weights", default=None, choices=["1/x2", "1/y2", "1/var"],
+                   help="calibration weights (default: none)")
+    p.add_argument("--response", default="integral", choices=["integral", "peak"],
+                   help="figure of merit calibrated (default: integral)")
+    p.add_argument("--units", default="umol/L", help="concentration units (default: umol/L)")
+    p.add_argument("--level", type=float, default=0.95,
+                   help="confidence level of intervals (default: 0.95)")
+    p.add_argument("--channel", default="red", choices=["red", "green", "blue", "luma", "raw"],
+                   help="colour channel for rows without their own (default: red)")
+    p.add_argument("--transfer", default="auto",
+                   help="transfer function for rows without their own: auto, srgb, bt709, "
+                   "linear, gamma=G, profile=FILE (default: auto)")
+    p.add_argument("--force", action="store_true",
+                   help="measure everything again (ignore the cache); allow a non-empty --out")
+    p.add_argument("--allow-outside", action="store_true",
+                   help="accept manifest paths outside the manifest's folder")
+    _common(p)
+    p.set_defaults(run=_run_batch)
+
+
+def _run_batch(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from .batch import CAUTIONS, BatchSettings, format_summary, run_batch
+    from .report import write_report
+
+    out = Path(args.out) if args.out else Path(f"batch-{Path(args.manifest).stem}")
+    settings = BatchSettings(
+        out_dir=out, workers=args.workers, dask=args.dask, model=args.model,
+        response=args.response, units=args.units, level=args.level, force=args.force,
+        channel=args.channel, transfer=args.transfer, allow_outside=args.allow_outside,
+        weights=args.weights, progress=not args.quiet)
+    result = run_batch(args.manifest, settings, finalize=write_report)
+    if not args.quiet:
+        print(format_summary(result, units=args.units, level=args.level))
+        print(f"report: {result.out_dir / 'report.html'}")
+        for text in CAUTIONS:
+            print(f"caution: {text}")
+    if result.fatal:
+        print(f"error: {result.out_dir}: no calibration: {result.fatal}", file=sys.stderr)
+    elif result.exit_code == 1:
+        print(f"partial: {result.n_failed} of {len(result.outcomes)} recording(s) failed "
+              f"({len(result.errors)} problem(s)); see {result.out_dir / 'errors.csv'}",
+              file=sys.stderr)
+    return result.exit_code
+
+
+@_command
+def _add_simulate(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "simulate", help="write the invented demo scenario (Tern Lake Hatchery)",
+        description="Write simulated card recordings (JPEG bursts and H.264 videos), a "
+        "manifest and the ground truth of the invented Tern Lake Hatchery scenario.")
+    p.add_argument("--out", metavar="DIR", required=True, help="destination folder")
+    p.add_argument("--seed", type=int, default=7, help="random seed (default: 7)")
+    _common(p)
+    p.set_defaults(run=_run_simulate)
+
+
+def _run_simulate(args: argparse.Namespace) -> int:
+    from .scenario import simulate_scenario
+
+    truth = simulate_scenario(args.out, seed=args.seed)
+    if not args.quiet:
+        print(f"wrote {len(truth['recordings'])} recordings, manifest.csv and truth.json "
+              f"to {args.out}")
+    return 0
+
+
 # --- END COMMANDS ---
 
 
