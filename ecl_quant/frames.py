@@ -369,7 +369,7 @@ def _apply_orientation(arr: NDArray[Any], orientation: int) -> NDArray[Any]:
     if orientation == 6:
         return np.rot90(arr, k=-1)
     if orientation == 7:
-        return np.rot90(arr, k=-1)[:, ::-1]
+        return np.swapaxes(arr[::-1, ::-1], 0, 1)
     if orientation == 8:
         return np.rot90(arr, k=1)
     return arr
@@ -422,6 +422,8 @@ def _read_still_header(path: Path, max_pixels: int) -> _StillHeader:
                 width, height = im.size
                 fmt = str(im.format or "")
                 mode = im.mode
+                # Refuse on the header alone, before anything reads further.
+                _check_pixels(width, height, max_pixels, path)
                 exif = im.getexif()
                 base = {int(k): v for k, v in exif.items()}
                 sub = {int(k): v for k, v in exif.get_ifd(ExifTags.IFD.Exif).items()}
