@@ -897,7 +897,7 @@ def _iter_dask(func: Callable[[Any], Any], items: Sequence[Any],
         futures = [client.submit(func, item, key=f"ecl-quant-{token}-{i}", pure=False)
                    for i, item in enumerate(items)]
         index = {f.key: i for i, f in enumerate(futures)}
-        for fut in as_completed(futures):
+        for fut in as_completed(futures, loop=client.loop):
             i = index[fut.key]
             try:
                 yield i, fut.result(), None
