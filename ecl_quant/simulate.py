@@ -2,7 +2,7 @@
 
 A recording shows ``n_rows x n_cols`` electrode spots on a card. Each spot emits one
 ECL pulse; the frames go through a simple sensor model and are written as sRGB stills
-(JPEG or PNG with EXIF), 16-bit linear TIFF stills, or BT.709 H.264 video. The ground
+(JPEG or PNG with EXIF), 16-bit linear TIFF stills (with EXIF), or BT.709 H.264 video. The ground
 truth (spot positions, pulse parameters, exact integrals, frame times, hot pixels,
 drift) is returned as a :class:`RecordingTruth` and can be written to JSON.
 
@@ -33,9 +33,10 @@ Spot truth
     than 1e-4. Green and blue carry ``channel_factors`` times the red light.
 Frame times
     Stills: EXIF DateTimeOriginal + SubSecTimeOriginal (milliseconds), so frame times
-    are rounded to 1 ms. Video: pts in a 1/600 s time base, so times are multiples of
-    1/600 s. 16-bit TIFF carries no metadata (times are ``i / fps``). The truth holds the
-    times exactly as encoded, and the light is integrated around those times.
+    are rounded to 1 ms (16-bit TIFF too: its Exif IFD holds the same tags). Video: pts
+    in a 1/600 s time base, so times are multiples of 1/600 s; video carries no exposure
+    time, so a pipeline that cannot divide by it gets ``integral * exposure_s``. The
+    truth holds the times exactly as encoded, and the light is integrated around them.
 
 Sensor model, per frame and colour channel: linear scene (card background + ambient
 leak + spots) -> electrons via ``gain_e_per_fs`` (electrons per full scale) -> Poisson
@@ -54,6 +55,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import math
+import struct
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass, field, fields, replace
 from fractions import Fraction
@@ -713,7 +715,7 @@ def _frame_times(spec: SimulationSpec, rng: np.random.Generator) -> NDArray[np.f
     if spec.encoding == "h264":
         ticks = _strictly_increasing(np.round(times * _VIDEO_TIME_BASE.denominator).astype(np.int64))
         return ticks / _VIDEO_TIME_BASE.denominator
-    if spec.encoding in ("jpeg", "png"):
+    if spec.encoding in ("jpeg", "png", "tiff16"):
         ms = _strictly_increasing(np.round(times * 1000.0).astype(np.int64))
         return ms / 1000.0
     return times
@@ -933,6 +935,83 @@ def _exif_bytes(spec: SimulationSpec, when: _dt.datetime, exposure_s: float) -> 
     return exif.tobytes()
 
 
+# TIFF 6.0 field types.
+_T_ASCII, _T_SHORT, _T_LONG, _T_RATIONAL = 2, 3, 4, 5
+
+
+def _tiff_ifd(entries: list[tuple[int, int, int, bytes]], start: int) -> bytes:
+    """One little-endian IFD at file offset ``start``: entries sorted by tag, values
+    longer than 4 bytes stored right after the IFD (word aligned), next-IFD offset 0."""
+    entries = sorted(entries)
+    data_at = start + 2 + 12 * len(entries) + 4
+    head, extra = [struct.pack("<H", len(entries))], b""
+    for tag, typ, count, value in entries:
+        if len(value) <= 4:
+            head.append(struct.pack("<HHI", tag, typ, count) + value.ljust(4, b"\0"))
+        else:
+            head.append(struct.pack("<HHII", tag, typ, count, data_at + len(extra)))
+            extra += value + (b"\0" if len(value) % 2 else b"")
+    head.append(struct.pack("<I", 0))
+    return b"".join(head) + extra
+
+
+def _ascii(text: str) -> tuple[int, bytes]:
+    raw = text.encode("ascii") + b"\0"
+    return len(raw), raw
+
+
+def _tiff16_bytes(rgb: NDArray[np.uint16], spec: SimulationSpec, when: _dt.datetime,
+                  exposure_s: float) -> bytes:
+    """A baseline TIFF 6.0 file: 16-bit RGB, one uncompressed strip, with an Exif IFD
+    (ExposureTime, ISOSpeedRatings, DateTimeOriginal, SubSecTimeOriginal)."""
+    h, w, _ = rgb.shape
+    pixels = np.ascontiguousarray(rgb, dtype="<u2").tobytes()
+    stamp = when.strftime("%Y:%m:%d %H:%M:%S")
+    frac = Fraction(exposure_s).limit_denominator(1_000_000)
+
+    def ifd0(exif_at: int, strip_at: int) -> list[tuple[int, int, int, bytes]]:
+        short = lambda v: struct.pack("<H", v)  # noqa: E731
+        long_ = lambda v: struct.pack("<I", v)  # noqa: E731
+        return [
+            (256, _T_LONG, 1, long_(w)), (257, _T_LONG, 1, long_(h)),
+            (258, _T_SHORT, 3, struct.pack("<3H", 16, 16, 16)),
+            (259, _T_SHORT, 1, short(1)),  # no compression
+            (262, _T_SHORT, 1, short(2)),  # RGB
+            (_TAG_MAKE, _T_ASCII, *_ascii(_CAMERA_MAKE)),
+            (_TAG_MODEL, _T_ASCII, *_ascii(_CAMERA_MODEL)),
+            (273, _T_LONG, 1, long_(strip_at)),
+            (_TAG_ORIENTATION, _T_SHORT, 1, short(1)),
+            (277, _T_SHORT, 1, short(3)), (278, _T_LONG, 1, long_(h)),
+            (279, _T_LONG, 1, long_(len(pixels))),
+            (282, _T_RATIONAL, 1, struct.pack("<2I", 72, 1)),
+            (283, _T_RATIONAL, 1, struct.pack("<2I", 72, 1)),
+            (284, _T_SHORT, 1, short(1)),  # chunky
+            (296, _T_SHORT, 1, short(2)),  # inch
+            (_TAG_DATETIME, _T_ASCII, *_ascii(stamp)),
+            (_EXIF_IFD, _T_LONG, 1, long_(exif_at)),
+        ]
+
+    exif_entries = [
+        (_TAG_EXPOSURE, _T_RATIONAL, 1, struct.pack("<2I", frac.numerator, frac.denominator)),
+        (_TAG_ISO, _T_SHORT, 1, struct.pack("<H", min(int(spec.iso), 65535))),
+        (_TAG_DT_ORIGINAL, _T_ASCII, *_ascii(stamp)),
+        (_TAG_SUBSEC_ORIGINAL, _T_ASCII, *_ascii(f"{when.microsecond // 1000:03d}")),
+    ]
+    size0 = len(_tiff_ifd(ifd0(0, 0), 8))
+    exif_at = 8 + size0 + (size0 % 2)
+    exif_block = _tiff_ifd(exif_entries, exif_at)
+    strip_at = exif_at + len(exif_block)
+    strip_at += strip_at % 2
+    block0 = _tiff_ifd(ifd0(exif_at, strip_at), 8)
+    out = bytearray(b"II*\0" + struct.pack("<I", 8))
+    out += block0
+    out += b"\0" * (exif_at - len(out))
+    out += exif_block
+    out += b"\0" * (strip_at - len(out))
+    out += pixels
+    return bytes(out)
+
+
 def _prepare_output(out_path: Path, *, folder: bool, overwrite: bool) -> None:
     if folder:
         if out_path.exists() and not out_path.is_dir():
@@ -957,17 +1036,12 @@ def _write_stills(
     ext = {"jpeg": "jpg", "png": "png", "tiff16": "tif"}[spec.encoding]
     for i, lin in enumerate(frames):
         path = out_dir / f"{prefix}_{i:05d}.{ext}"
+        when = start + _dt.timedelta(milliseconds=int(round(times[i] * 1000.0)))
         if spec.encoding == "tiff16":
-            import cv2
-
-            ok, buf = cv2.imencode(".tif", _encode_linear16(lin)[..., ::-1].copy(),
-                                   [cv2.IMWRITE_TIFF_COMPRESSION, 1])  # uncompressed
-            if not ok:  # pragma: no cover - OpenCV refuses only on broken builds
-                raise OutputError("OpenCV could not encode a 16-bit TIFF", path=path)
+            data = _tiff16_bytes(_encode_linear16(lin), spec, when, float(exposures[i]))
             with atomic_write(path, "wb") as fh:
-                fh.write(buf.tobytes())
+                fh.write(data)
         else:
-            when = start + _dt.timedelta(milliseconds=int(round(times[i] * 1000.0)))
             exif = _exif_bytes(spec, when, float(exposures[i]))
             im = Image.fromarray(_encode_srgb8(lin), mode="RGB")
             with atomic_write(path, "wb") as fh:
@@ -977,12 +1051,14 @@ def _write_stills(
                 else:
                     im.save(fh, format="PNG", compress_level=1, exif=exif)
         files.append(str(path))
+    timing = "exif DateTimeOriginal + SubSecTimeOriginal (ms)"
     if spec.encoding == "tiff16":
         enc: dict[str, Any] = {"kind": "tiff16", "transfer": "linear", "bit_depth": 16,
-                               "container": "tiff", "metadata": "none", "timing": "fps"}
+                               "container": "tiff (baseline RGB, uncompressed)",
+                               "metadata": "exif", "timing": timing}
     else:
         enc = {"kind": spec.encoding, "transfer": "srgb", "bit_depth": 8,
-               "metadata": "exif", "timing": "exif DateTimeOriginal + SubSecTimeOriginal (ms)"}
+               "metadata": "exif", "timing": timing}
         if spec.encoding == "jpeg":
             enc.update(quality=spec.jpeg_quality, subsampling=spec.jpeg_subsampling)
     return files, enc

@@ -62,25 +62,31 @@ def _spot_integrals(truth: RecordingTruth, *, linear: bool) -> tuple[np.ndarray,
     return np.trapezoid(net, t, axis=0), t
 
 
-@pytest.mark.parametrize("encoding", ["png", "jpeg"])
+@pytest.mark.parametrize("encoding", ["png", "jpeg", "tiff16"])
 def test_decoded_spot_ratio_is_linear(tmp_path: Path, encoding: str) -> None:
     spec = SimulationSpec(encoding=encoding, jpeg_quality=95, **TWO_SPOTS)  # type: ignore[arg-type]
     truth = simulate_recording(tmp_path / "rec", spec)
     integ, _ = _spot_integrals(truth, linear=True)
-    # sRGB decoding (IEC 61966-2-1) restores proportionality: 8x within 2 %.
+    # sRGB decoding (IEC 61966-2-1; 16-bit TIFF: linear) restores proportionality: 8x
+    # within 2 %.
     assert integ[1] / integ[0] == pytest.approx(RATIO, rel=0.02)
     # And the unit convention: (FS/s) x s, as in the truth, within 3 % (trapezoid at
     # 20 frames/s, 8-bit quantisation, noise).
     for got, s in zip(integ, truth.spots):
         assert got == pytest.approx(s.integral, rel=0.03)
-    # Without decoding, the encoded codes compress the ratio (towards 8**(1/2.4) = 2.4
-    # on a black card; 3.80 +- 0.05 measured on this dim card).
     raw, _ = _spot_integrals(truth, linear=False)
-    assert raw[1] / raw[0] < 4.0
+    if encoding == "tiff16":
+        # Linear 16-bit codes need no decoding: the codes themselves keep the ratio.
+        assert raw[1] / raw[0] == pytest.approx(RATIO, rel=0.02)
+    else:
+        # Without decoding, the encoded codes compress the ratio (towards 8**(1/2.4) =
+        # 2.4 on a black card; 3.80 +- 0.05 measured on this dim card).
+        assert raw[1] / raw[0] < 4.0
 
 
-def test_exposure_metadata_round_trip(tmp_path: Path) -> None:
-    spec = SimulationSpec(encoding="jpeg", exposure_s=1 / 60, iso=320, exposure_change=(7, 1 / 120),
+@pytest.mark.parametrize("encoding", ["jpeg", "png", "tiff16"])
+def test_exposure_metadata_round_trip(tmp_path: Path, encoding: str) -> None:
+    spec = SimulationSpec(encoding=encoding,  # type: ignore[arg-type] exposure_s=1 / 60, iso=320, exposure_change=(7, 1 / 120),
                           vfr=True, n_frames=15, size=(64, 96), n_rows=1, n_cols=2)
     truth = simulate_recording(tmp_path / "rec", spec)
     for i, path in enumerate(truth.files):

@@ -16,6 +16,7 @@ from dataclasses import replace
 from pathlib import Path
 
 import av
+import cv2
 import numpy as np
 import pytest
 import tifffile
@@ -281,6 +282,31 @@ def test_jpeg_exif_reads_back_with_pillow(tmp_path: Path) -> None:
         assert exif[ExifTags.Base.Orientation] == 1
     steps = np.diff(truth.frame_times_s)
     assert steps.min() > 0 and steps.max() - steps.min() > 0.01  # really irregular
+
+
+def test_tiff16_is_linear_with_exif(tmp_path: Path) -> None:
+    # tifffile and OpenCV (reference readers) agree on the pixels; the Exif IFD is read by
+    # Pillow and tifffile; codes / 65535 are the linear values (TIFF 6.0 baseline RGB).
+    spec = _flat_spec(0.25, read_noise_fs=0.0, gain_e_per_fs=1e12, dark_level_fs=0.0, iso=800,
+                      exposure_s=1 / 125, n_frames=3, vfr=True)
+    truth = simulate_recording(tmp_path / "tif", spec)
+    start = dt.datetime(2024, 5, 14, 9, 30, 0)
+    for i, path in enumerate(truth.files):
+        a = tifffile.imread(path)
+        b = cv2.imread(path, cv2.IMREAD_UNCHANGED)[..., ::-1]
+        assert a.dtype == np.uint16 and a.shape == (120, 160, 3)
+        assert np.array_equal(a, b)
+        np.testing.assert_allclose(a / 65535.0, 0.25, atol=0.6 / 65535)
+        with Image.open(path) as im:
+            sub = im.getexif().get_ifd(ExifTags.IFD.Exif)
+        assert float(sub[ExifTags.Base.ExposureTime]) == pytest.approx(1 / 125)
+        assert int(sub[ExifTags.Base.ISOSpeedRatings]) == 800
+        when = dt.datetime.strptime(sub[ExifTags.Base.DateTimeOriginal], "%Y:%m:%d %H:%M:%S")
+        when += dt.timedelta(milliseconds=int(sub[ExifTags.Base.SubsecTimeOriginal]))
+        assert (when - start).total_seconds() == pytest.approx(truth.frame_times_s[i], abs=1e-9)
+        with tifffile.TiffFile(path) as tf:
+            assert tf.pages[0].tags["ExifTag"].value["ExposureTime"] == (1, 125)
+    assert truth.encoding["transfer"] == "linear"
 
 
 def test_png_is_srgb_encoded_linear_light(tmp_path: Path) -> None:
