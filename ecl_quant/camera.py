@@ -128,9 +128,9 @@ PROFILE_VERSION = 1
 PROFILE_CHANNELS = ("red", "green", "blue", "luma")
 # EMVA 1288 Eq. 54: below this dark variance only an upper limit of the dark noise exists.
 _DARK_VAR_FLOOR_DN2 = 0.24
-# BT.601 luma weights (the Y' of JPEG/JFIF stills) for the luma response curve.
-_LUMA_WEIGHTS = np.array([0.299, 0.587, 0.114])
-_IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".jpg", ".jpeg", ".dng", ".bmp", ".pgm", ".ppm"}
+# Rec. 709 luma weights (ITU-R BT.709-6 item 3.2), the weights radiometry uses for the
+# "luma" channel of R'G'B' stills, so the luma curve applies to the same quantity.
+_LUMA_WEIGHTS = np.array([0.2126, 0.7152, 0.0722])
 
 
 class CameraWarning(EclQuantWarning):
@@ -301,6 +301,7 @@ class StackStatistics:
     n_frames : int
         L.
     shape : (int, int)
+        Size of the analysed image (cropped by 9 px per side after the high-pass filter).
     highpass : bool
     """
 
@@ -366,13 +367,15 @@ def stack_statistics(frames: Iterable[ArrayLike], *, highpass: bool = False) -> 
         hp = highpass_1288(mean_img)
         measured = float(np.mean((hp - hp.mean()) ** 2))
         correction = sigma_stack * _highpass_noise_gain() / n
+        shape = hp.shape
     else:
         measured = float(np.mean((mean_img - mean_img.mean()) ** 2))
         correction = sigma_stack / n
+        shape = mean_img.shape
     return StackStatistics(
         mean_dn=float(mean_img.mean()), spatial_variance_dn2=measured - correction,
         measured_variance_dn2=measured, temporal_variance_dn2=sigma_stack, n_frames=n,
-        shape=tuple(int(s) for s in mean_img.shape), highpass=highpass,
+        shape=tuple(int(v) for v in shape), highpass=highpass,
     )
 
 
@@ -1324,9 +1327,15 @@ def _read_manifest(path: Path) -> list[LevelGroup]:
 
 
 def _image_files(folder: Path) -> list[Path]:
-    return sorted(p for p in folder.iterdir()
-                  if p.is_file() and p.suffix.lower() in _IMAGE_SUFFIXES
-                  and not p.name.startswith("."))
+    from .frames import RAW_SUFFIXES, STILL_SUFFIXES, natural_key
+
+    try:
+        entries = list(folder.iterdir())
+    except OSError as err:
+        raise InputFormatError(f"cannot list the folder ({err.strerror})", path=folder) from err
+    return sorted((p for p in entries
+                   if p.is_file() and p.suffix.lower() in STILL_SUFFIXES + RAW_SUFFIXES
+                   and not p.name.startswith(".")), key=natural_key)
 
 
 def _group_by_exif(folder: Path, role: str) -> list[LevelGroup]:
@@ -1408,7 +1417,8 @@ def _iter_planes(files: Sequence[Path], channel: str,
                  roi: tuple[int, int, int, int] | None) -> Iterator[tuple[NDArray[Any], float]]:
     from .frames import iter_frames  # frames stage
 
-    for fr in iter_frames([str(f) for f in files]):
+    # fps=1: frame times do not matter here (and no TimingWarning); keep manifest order.
+    for fr in iter_frames([str(f) for f in files], fps=1.0, sort=False):
         yield _plane(fr, channel, roi), float(fr.max_code)
 
 
@@ -1612,7 +1622,7 @@ class ResponseCurve:
     ----------
     response : (256, C) ndarray of float64
         Relative linear light per 8-bit code, full scale 1.0 where the channel clips;
-        monotone non-decreasing, response[0] = 0 and response[255] = 1.
+        monotone non-decreasing, at most 1, response[0] = 0 and response[255] = 1.
     opencv_response : (256, C) ndarray of float32
         OpenCV's output as returned (Debevec: resp[128] about 1).
     full_scale : (C,) ndarray
@@ -1751,7 +1761,8 @@ def recover_response(
         calib = cv2.createCalibrateRobertson()
     else:
         raise InputFormatError(f"unknown response method {method!r}; use debevec or robertson")
-    resp = np.asarray(calib.process(imgs, t), dtype=np.float32)  # (256, 1, C)
+    resp = np.asarray(calib.process(imgs, t), dtype=np.float32)  # (256, 1, C) or (256, 1)
+    resp = resp.reshape(256, 1, -1)
     n_ch = resp.shape[2]
     resp2 = resp.reshape(256, n_ch)
     g = resp2.astype(np.float64)
@@ -1776,11 +1787,11 @@ def recover_response(
         else:
             full[c] = thr
             how.append("clip_threshold")
-    norm = g / full
-    norm = np.maximum.accumulate(norm, axis=0)
+    # Monotone, and capped at full scale: by the definition of the clip threshold every
+    # unclipped code lies below it (the top codes are the least constrained by the fit).
+    norm = np.minimum(np.maximum.accumulate(g / full, axis=0), 1.0)
     norm[0, :] = 0.0
-    norm[255, :] = np.maximum(1.0, norm[254, :])
-    norm = np.minimum(norm, norm[255, :])
+    norm[255, :] = 1.0
     names = tuple(channel_names) if channel_names else (
         ("luma",) if n_ch == 1 else ("red", "green", "blue"))
     if len(names) != n_ch:
@@ -1870,7 +1881,7 @@ def make_profile(curve: ResponseCurve, *, luma: ResponseCurve | None = None,
     """Build a device profile from a recovered response (and an optional luma curve).
 
     A 3-channel curve fills red/green/blue; luma comes from ``luma`` (the bracket's
-    BT.601 Y') or, when absent, the Rec. 601-weighted mean of the three curves. A
+    Rec. 709 Y') or, when absent, the Rec. 709-weighted mean of the three curves. A
     1-channel (grey) curve fills all four keys.
     """
     resp: dict[str, NDArray[np.float64]] = {}
@@ -1972,25 +1983,6 @@ def _parse_exposures(text: str | Sequence[float]) -> list[float]:
     return out
 
 
-def _device_tags(path: Path) -> tuple[str | None, str | None]:
-    try:
-        from PIL import Image
-
-        with Image.open(path) as im:
-            ex = im.getexif()
-            make, model = ex.get(0x010F), ex.get(0x0110)
-    except Exception:  # noqa: BLE001 - metadata is optional; unreadable tags mean unknown
-        return None, None
-
-    def clean(v: Any) -> str | None:
-        if v is None:
-            return None
-        s = str(v).strip().strip("\x00").strip()
-        return s or None
-
-    return clean(make), clean(model)
-
-
 def read_bracket(folder: str | Path, *, exposures: str | Sequence[float] | None = None,
                  ) -> tuple[list[NDArray[np.uint8]], list[float], list[Path],
                             tuple[str | None, str | None]]:
@@ -2037,13 +2029,14 @@ def read_bracket(folder: str | Path, *, exposures: str | Sequence[float] | None 
                     "(seconds, in file-name order)", path=folder)
             t.append(float(e))
     images: list[NDArray[np.uint8]] = []
-    for fr in iter_frames([str(f) for f in files]):
+    for fr in iter_frames([str(f) for f in files], fps=1.0, sort=False):
         if fr.data.dtype != np.uint8:
             raise InputFormatError(
                 f"{Path(fr.source).name} is {fr.data.dtype}; response curves are for 8-bit "
                 "gamma-encoded stills", path=fr.source)
         images.append(np.asarray(fr.data))
-    return images, t, files, _device_tags(files[0])
+    info = read_exif(files[0])
+    return images, t, files, (info.make, info.model)
 
 
 def profile_from_bracket(
