@@ -949,8 +949,12 @@ RESULT_FLAGS: dict[str, str] = {
                  "number is not precise enough to quantify.",
     "above_range": "The reading is above the highest standard: the calibration is not "
                    "known to hold there; dilute the sample and measure again.",
-    "below_range": "The reading is below the lowest standard above zero: the value is an "
-                   "extrapolation.",
+    "extrapolated": "The reading lies outside the span of the standards: the value is an "
+                    "extrapolation of the calibration.",
+    "no_solution": "The calibration curve never reaches this reading, so no concentration "
+                   "can be given.",
+    "no_valid_reading": "Every spot of this sample was left out (saturated or not "
+                        "measured), so there is nothing to quantify.",
 }
 
 
@@ -967,15 +971,16 @@ class QCLimits:
         ``ambient_light`` when the median linear level around the spots is above this
         fraction of full scale (per frame).
     blur_limit : float
-        ``blurred`` when the spot sharpness score (variance of the Laplacian of the
-        contrast-normalised spot projection, times the spot radius in px) is below this.
+        ``blurred`` when the spot sharpness score (:func:`spot_sharpness`: variance of the
+        Laplacian of the contrast-normalised spot projection, times the radius) is below
+        this; 0.02 is a logistic edge scale of about 1 px (10-90 % edge width 4 px).
     min_snr : float
         ``low_snr`` for spots of standards above zero and of unknowns below this SNR.
     """
 
     drift_limit_px: float = 2.0
     ambient_limit: float = 0.15
-    blur_limit: float = 0.05
+    blur_limit: float = 0.02
     min_snr: float = 5.0
 
 
@@ -1651,3 +1656,175 @@ def _g(v: Any) -> str:
         return f"{float(v):.4g}"
     except (TypeError, ValueError):
         return str(v)
+
+
+# ------------------------------------------------------------------ calibration stage
+
+
+def _calibrate(measurements: Any, settings: BatchSettings, out: Path) -> tuple[Any, str | None]:
+    """Fit the calibration on the standards and blanks in use; write calibration.json."""
+    from .calibration import calibrate_table, save_calibration
+
+    m = measurements
+    cal_df = m[m["used"].astype(bool) & m["role"].isin(["standard", "blank"])]
+    if cal_df.empty:
+        return None, "no standard or blank could be measured (see errors.csv)"
+    try:
+        cal = calibrate_table(
+            cal_df.reset_index(drop=True), x="concentration", y="response", role="role",
+            se="response_se", model=settings.model, weights=settings.weights,
+            level=settings.level, units=settings.units,
+            response_units=_RESPONSE_UNITS[settings.response])
+    except EclQuantError as err:
+        return None, err.reason
+    save_calibration(cal, out / "calibration.json")
+    return cal, None
+
+
+_RESPONSE_UNITS = {"integral": "FS x s (spot integral)", "peak": "FS/s (spot peak)"}
+
+
+def _quantify(tables: Mapping[str, Any], cal: Any, settings: BatchSettings) -> Any:
+    """Concentrations of the unknowns (results.csv) with QC flags merged in."""
+    import pandas as pd
+
+    from .calibration import quantify_table
+
+    m = tables["measurements"]
+    unk = m[m["role"] == "unknown"]
+    rows: list[dict[str, Any]] = []
+    samples = list(dict.fromkeys(unk["sample"].tolist()))
+    if cal is not None and len(unk):
+        used = unk[unk["used"].astype(bool)].reset_index(drop=True)
+        q = (quantify_table(used, cal, y="response", sample="sample", se="response_se",
+                            level=settings.level) if len(used) else pd.DataFrame())
+        by_sample = {str(r["sample"]): r for r in q.to_dict(orient="records")}
+    else:
+        by_sample = {}
+    for s in samples:
+        sm = unk[unk["sample"] == s]
+        qc_flags = [w for f in sm["flags"] for w in _split_flags(f)
+                    if w not in ("no_pulse",)]
+        recs = ";".join(dict.fromkeys(sm["recording"].tolist()))
+        r = by_sample.get(str(s))
+        if r is None:
+            rows.append({"sample": s, "n": 0, "response_mean": math.nan,
+                         "concentration": math.nan, "se": math.nan, "ci_low": math.nan,
+                         "ci_high": math.nan, "level": settings.level, "units": settings.units,
+                         "recordings": recs,
+                         "flags": _join_flags(["no_valid_reading"] if cal is not None else [],
+                                              qc_flags)})
+            continue
+        rows.append({"sample": s, "n": int(r["n"]), "response_mean": r["response_mean"],
+                     "concentration": r["concentration"], "se": r["se"],
+                     "ci_low": r["ci_low"], "ci_high": r["ci_high"], "level": r["level"],
+                     "units": settings.units, "recordings": recs,
+                     "flags": _join_flags(_split_flags(r.get("flags")), qc_flags)})
+    return pd.DataFrame(rows, columns=_RESULT_COLUMNS)
+
+
+def _qc_with_results(tables: Mapping[str, Any], cal: Any, settings: BatchSettings) -> Any:
+    """qc.csv: add below_lod / above_range per recording from its own unknown readings."""
+    from .calibration import quantify_table
+
+    qc = tables["qc"].copy()
+    m = tables["measurements"]
+    if cal is None or qc.empty:
+        return qc
+    unk = m[(m["role"] == "unknown") & m["used"].astype(bool)].copy()
+    if unk.empty:
+        return qc
+    unk["group"] = unk["recording"] + "\x1f" + unk["sample"].astype(str)
+    q = quantify_table(unk.reset_index(drop=True), cal, y="response", sample="group",
+                       se="response_se", level=settings.level)
+    extra: dict[str, list[str]] = {}
+    for r in q.to_dict(orient="records"):
+        rec = str(r["sample"]).split("\x1f", 1)[0]
+        words = [w for w in _split_flags(r.get("flags")) if w in ("below_lod", "above_range")]
+        extra.setdefault(rec, []).extend(words)
+    qc["flags"] = [_join_flags(_split_flags(f), extra.get(rec, []))
+                   for rec, f in zip(qc["recording"], qc["flags"])]
+    return qc
+
+
+def _measure_settings_doc(jobs: Sequence[_Job]) -> dict[str, Any]:
+    if not jobs:
+        return {}
+    try:
+        doc = dataclasses.asdict(_make_settings(jobs[0]))
+    except Exception:  # noqa: BLE001 - provenance only
+        doc = dict(jobs[0].measure_options)
+    doc.pop("channel", None)
+    doc.pop("transfer", None)
+    return {k: (str(v) if not isinstance(v, (int, float, str, bool, type(None), list, dict))
+                else v) for k, v in doc.items()}
+
+
+# ------------------------------------------------------------------ field QC metrics
+
+
+def spot_sharpness(image: Any, spots: Iterable[tuple[float, float, float]], *,
+                   n_brightest: int = 3) -> float:
+    """Sharpness of spot edges: variance of the Laplacian on the spot projection.
+
+    For each spot a box of +-1.6 radius is cut out and normalised to its contrast
+    (core median minus the median of the ring beyond 1.25 radius), the 4-neighbour
+    Laplacian is taken (OpenCV), and its variance, less the variance it has on the
+    ring alone (noise), is multiplied by the radius so the score does not depend on
+    the spot size. The median over the ``n_brightest`` spots of highest contrast is
+    returned. For the simulator's logistic spot edge (radius 13 px) the score is about
+    0.13 at an edge scale of 0.45 px, 0.03 at 0.8 px and 0.005 at 1.5 px (noiseless
+    spots); NaN when no spot has positive contrast.
+
+    Parameters
+    ----------
+    image : (H, W) ndarray
+        Projection of the recording (max over time), linear.
+    spots : iterable of (x_px, y_px, radius_px)
+    n_brightest : int
+
+    Returns
+    -------
+    float
+
+    References
+    ----------
+    Pech-Pacheco, Cristobal, Chamorro-Martinez, Fernandez-Valdivia, "Diatom autofocusing
+    in brightfield microscopy: a comparative study", ICPR 2000 (variance of the
+    Laplacian as a focus measure).
+    """
+    import cv2
+    import numpy as np
+
+    img = np.asarray(image)
+    h, w = img.shape[:2]
+    scored: list[tuple[float, float]] = []
+    for x, y, r in spots:
+        if not (r > 1 and math.isfinite(x) and math.isfinite(y)):
+            continue
+        half = int(math.ceil(1.6 * r)) + 2
+        xi, yi = int(round(x)), int(round(y))
+        x0, x1 = max(xi - half, 0), min(xi + half + 1, w)
+        y0, y1 = max(yi - half, 0), min(yi + half + 1, h)
+        if x1 - x0 < 5 or y1 - y0 < 5:
+            continue
+        crop = img[y0:y1, x0:x1].astype(np.float32)
+        yy, xx = np.mgrid[y0:y1, x0:x1]
+        rho = np.hypot(xx - x, yy - y)
+        ring = rho > 1.25 * r
+        core = rho < 0.5 * r
+        if ring.sum() < 8 or core.sum() < 4:
+            continue
+        bg = float(np.median(crop[ring]))
+        contrast = float(np.median(crop[core])) - bg
+        if not contrast > 0:
+            continue
+        lap = cv2.Laplacian((crop - bg) / contrast, cv2.CV_32F, ksize=1)
+        inner = lap[1:-1, 1:-1]
+        ring_in = ring[1:-1, 1:-1] & (rho[1:-1, 1:-1] > 1.25 * r + 2)
+        noise = float(inner[ring_in].var()) if ring_in.sum() >= 8 else 0.0
+        scored.append((contrast, max(float(inner.var()) - noise, 0.0) * float(r)))
+    if not scored:
+        return math.nan
+    scored.sort(reverse=True)
+    return float(np.median([s for _c, s in scored[:n_brightest]]))

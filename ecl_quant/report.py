@@ -29,8 +29,6 @@ from .batch import CAUTIONS, QC_FLAGS, RESULT_FLAGS
 __all__ = [
     "png_data_uri",
     "thumbnail_png",
-    "figure_png",
-    "calibration_figure",
     "build_report",
     "write_report",
     "REPORT_NAME",
@@ -70,108 +68,6 @@ def thumbnail_png(source: str | Path | bytes, *, max_px: int = _THUMB_PX) -> byt
     return out.getvalue()
 
 
-def figure_png(fig: Any, *, dpi: int = 110) -> bytes:
-    """Render a matplotlib Figure (Agg) to PNG bytes."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-
-    FigureCanvasAgg(fig)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi)
-    return buf.getvalue()
-
-
-def _band_arrays(cal: Any, x: np.ndarray, level: float) -> tuple[np.ndarray, np.ndarray,
-                                                                 np.ndarray, np.ndarray] | None:
-    """Confidence and prediction band of the fitted curve (lower/upper), if available."""
-    for name in ("bands", "prediction_bands", "band"):
-        fn = getattr(cal, name, None)
-        if callable(fn):
-            try:
-                res = fn(x, level=level)
-            except TypeError:
-                res = fn(x)
-            if isinstance(res, Mapping):
-                keys = ("conf_low", "conf_high", "pred_low", "pred_high")
-                if all(k in res for k in keys):
-                    return tuple(np.asarray(res[k], float) for k in keys)  # type: ignore[return-value]
-            else:
-                vals = [getattr(res, k, None) for k in ("conf_low", "conf_high",
-                                                        "pred_low", "pred_high")]
-                if all(v is not None for v in vals):
-                    return tuple(np.asarray(v, float) for v in vals)  # type: ignore[return-value]
-    return None
-
-
-def calibration_figure(cal: Any, points: Any, *, units: str = "", level: float = 0.95,
-                       response_label: str = "response") -> bytes:
-    """Calibration plot (curve, confidence and prediction bands, points) with residuals.
-
-    Parameters
-    ----------
-    cal : Calibration
-        Fitted calibration (``predict``; bands when it provides them).
-    points : DataFrame
-        Columns ``concentration``, ``response`` and ``role``; blanks drawn apart.
-    units : str
-        Concentration units for the axis label.
-    level : float
-        Level of the bands.
-    response_label : str
-        Name of the response (y axis).
-
-    Returns
-    -------
-    bytes
-        PNG.
-    """
-    from matplotlib.figure import Figure
-
-    x = np.asarray(points["concentration"], float)
-    y = np.asarray(points["response"], float)
-    role = np.asarray(points["role"]).astype(str)
-    fig = Figure(figsize=(7.2, 5.6))
-    gs = fig.add_gridspec(2, 1, height_ratios=(3, 1.3), hspace=0.08)
-    ax = fig.add_subplot(gs[0])
-    axr = fig.add_subplot(gs[1], sharex=ax)
-    xmax = float(np.nanmax(x)) if x.size else 1.0
-    grid = np.linspace(0.0, xmax * 1.04 if xmax > 0 else 1.0, 240)
-    try:
-        fit = np.asarray(cal.predict(grid), float)
-    except Exception:  # noqa: BLE001 - plot what we can
-        fit = None
-    if fit is not None:
-        bands = _band_arrays(cal, grid, level)
-        if bands is not None:
-            clo, chi, plo, phi = bands
-            ax.fill_between(grid, plo, phi, color="#8fb9b9", alpha=0.28, lw=0,
-                            label=f"{level:.0%} prediction band")
-            ax.fill_between(grid, clo, chi, color="#0f6e6e", alpha=0.30, lw=0,
-                            label=f"{level:.0%} confidence band")
-        ax.plot(grid, fit, color="#0f6e6e", lw=1.8, label=f"fit ({getattr(cal, 'model', '')})")
-    std = role == "standard"
-    ax.plot(x[std], y[std], "o", ms=5, mfc="white", mec="#1d2430", label="standards")
-    if np.any(~std):
-        ax.plot(x[~std], y[~std], "s", ms=5, mfc="#d9a441", mec="#6b4a00", label="blanks")
-    ax.set_ylabel(response_label)
-    ax.legend(loc="upper left", fontsize=8, frameon=False)
-    ax.grid(alpha=0.25)
-    ax.tick_params(labelbottom=False)
-    if fit is not None:
-        try:
-            res = y - np.asarray(cal.predict(x), float)
-        except Exception:  # noqa: BLE001
-            res = np.full_like(y, np.nan)
-        axr.axhline(0.0, color="#0f6e6e", lw=1)
-        axr.plot(x[std], res[std], "o", ms=4, mfc="white", mec="#1d2430")
-        if np.any(~std):
-            axr.plot(x[~std], res[~std], "s", ms=4, mfc="#d9a441", mec="#6b4a00")
-    axr.set_ylabel("residual")
-    axr.set_xlabel(f"concentration ({units})" if units else "concentration")
-    axr.grid(alpha=0.25)
-    fig.subplots_adjust(left=0.13, right=0.97, top=0.97, bottom=0.1)
-    return figure_png(fig)
-
-
 # ------------------------------------------------------------------ HTML helpers
 
 _CSS = """
@@ -200,6 +96,7 @@ aside.caution ul{margin:.2rem 0 .3rem;padding-left:1.2rem}
 .tile span{color:var(--muted);font-size:.85rem}
 .tile.bad{border-color:var(--bad);background:var(--bad-bg)}
 .tile.good{border-color:var(--ok);background:var(--ok-bg)}
+.scroll{overflow-x:auto}
 table{border-collapse:collapse;width:100%;margin:.4rem 0 1rem;font-variant-numeric:tabular-nums;
 font-size:.92rem}
 caption{text-align:left;color:var(--muted);font-size:.85rem;padding:.2rem 0}
@@ -235,7 +132,7 @@ padding-top:.6rem}
 nav.toc{display:none}article.card{break-inside:avoid}}
 """
 
-_SEVERE = {"saturated", "below_lod", "above_range", "failed", "no_pulse", "outside_range"}
+_SEVERE = {"saturated", "below_lod", "above_range", "failed", "no_solution", "no_valid_reading"}
 
 
 def _e(value: Any) -> str:
@@ -290,7 +187,7 @@ def _table(rows: Sequence[Mapping[str, Any]], columns: Sequence[tuple[str, str]]
            flags: Iterable[str] = (), paths: Iterable[str] = (),
            digits: int = 4) -> str:
     numeric, flags, paths = set(numeric), set(flags), set(paths)
-    out = ["<table>"]
+    out = ['<div class="scroll"><table>']
     if caption:
         out.append(f"<caption>{_e(caption)}</caption>")
     out.append("<thead><tr>" + "".join(
@@ -311,7 +208,7 @@ def _table(rows: Sequence[Mapping[str, Any]], columns: Sequence[tuple[str, str]]
         out.append("<tr>" + "".join(cells) + "</tr>")
     if not rows:
         out.append(f'<tr><td colspan="{len(columns)}">(none)</td></tr>')
-    out.append("</tbody></table>")
+    out.append("</tbody></table></div>")
     return "".join(out)
 
 
@@ -375,10 +272,8 @@ def _section_results(results: Any, batch: Mapping[str, Any]) -> str:
     return f'<section id="results"><h2>Results</h2>{body}</section>'
 
 
-def _section_calibration(out_dir: Path, cal_doc: Any, measurements: Any,
-                         batch: Mapping[str, Any]) -> str:
+def _section_calibration(out_dir: Path, cal_doc: Any, batch: Mapping[str, Any]) -> str:
     params = batch.get("parameters", {})
-    units = params.get("units", "")
     level = float(params.get("level", 0.95))
     parts = ['<section id="calibration"><h2>Calibration</h2>']
     cal_error = batch.get("calibration_error")
@@ -392,49 +287,28 @@ def _section_calibration(out_dir: Path, cal_doc: Any, measurements: Any,
             cal = load_calibration(out_dir / "calibration.json")
         except Exception as err:  # noqa: BLE001 - the report shows what it can
             parts.append(f"<p>calibration.json could not be loaded: {_e(err)}</p>")
-    if cal is not None and measurements is not None and len(measurements):
-        pts = measurements
-        if "used" in pts.columns:
-            pts = pts[pts["used"].astype(bool)]
-        pts = pts[pts["role"].isin(["standard", "blank"])]
+    if cal is not None:
         try:
-            png = calibration_figure(cal, pts, units=units, level=level,
-                                     response_label=str(params.get("response", "response")))
+            from .calibration import plot_calibration
+
+            png = plot_calibration(cal, level=level)
         except Exception as err:  # noqa: BLE001
             parts.append(f"<p>calibration plot failed: {_e(err)}</p>")
         else:
             parts.append(
                 '<figure class="wide">' + _img(png_data_uri(png), "calibration plot") +
-                f"<figcaption>Calibration: standards and blanks (each point one spot), the "
-                f"fitted curve with its {level:.0%} confidence band (the curve) and "
-                f"prediction band (a new reading); residuals below.</figcaption></figure>")
-    if isinstance(cal_doc, Mapping):
-        summary = _calibration_summary(cal_doc)
-        if summary:
-            parts.append(_kv_table(summary, caption="Fitted calibration"))
+                f"<figcaption>Calibration on the standards and blanks in use (one point per "
+                f"spot): fitted curve, {level:.0%} confidence band of the curve and prediction "
+                "band of one new reading, LOD and LOQ; residuals below.</figcaption></figure>")
+        pf = cal.parameters_frame()
+        parts.append(_table(_records(pf), [("parameter", "parameter"), ("value", "value"),
+                                           ("se", "SE"), ("ci_low", f"{level:.0%} CI low"),
+                                           ("ci_high", f"{level:.0%} CI high")],
+                            numeric=("value", "se", "ci_low", "ci_high"), digits=5,
+                            caption=f"Model {cal.model}; response {params.get('response', '')}"))
+        parts.append(f"<pre>{_e(cal.summary())}</pre>")
     parts.append("</section>")
     return "".join(parts)
-
-
-def _calibration_summary(doc: Mapping[str, Any]) -> dict[str, Any]:
-    """Pick the headline numbers of calibration.json, whatever its exact schema."""
-    out: dict[str, Any] = {}
-    body = doc.get("calibration", doc) if isinstance(doc.get("calibration"), Mapping) else doc
-    for key in ("model", "units", "n", "r2", "s_yx", "aic", "aicc", "weights", "level"):
-        if key in body:
-            out[key] = body[key]
-    for key in ("params", "parameters", "param_names"):
-        if key in body:
-            out[key] = body[key]
-    for key in ("limits", "working_range", "tests"):
-        if key in body:
-            val = body[key]
-            if isinstance(val, Mapping):
-                for k, v in val.items():
-                    out[f"{key}.{k}"] = v
-            else:
-                out[key] = val
-    return out
 
 
 def _section_qc(qc: Any) -> str:
@@ -601,7 +475,7 @@ def build_report(out_dir: str | Path, *, title: str | None = None) -> str:
         _cautions_html(),
         f'<nav class="toc" aria-label="contents"><ol>{toc}</ol></nav>',
         _section_results(results, batch),
-        _section_calibration(out, cal_doc, measurements, batch),
+        _section_calibration(out, cal_doc, batch),
         _section_qc(qc),
         _section_recordings(out, qc, errors),
         _section_errors(errors),
