@@ -1,0 +1,1158 @@
+"""Spots: detection on a projection, spot files, weight cutouts, background annuli, drift.
+
+Coordinates
+-----------
+Pixel ``(row i, column j)`` has its centre at ``x = j``, ``y = i`` and covers
+``[j - 0.5, j + 0.5] x [i - 0.5, i + 0.5]`` (origin at the top-left pixel, after the
+recording's rotation is applied). Spot coordinates refer to the *reference* frame of the
+recording (the first frame); when drift registration is on, the masks follow the
+measured shift of each later frame.
+
+Masks
+-----
+Each spot is stored once as a small weight cutout plus the position of its top-left
+pixel (:class:`Cutout`), the way aperture photometry stores aperture masks: the weight
+of a pixel is the fraction of its area inside the shape (estimated on a sub-pixel grid).
+Background annuli are 0/1 cutouts with the other spots masked out.
+
+References
+----------
+Stetson, P. B. (1987), DAOPHOT: a computer program for crowded-field stellar photometry,
+PASP 99, 191 (aperture photometry with a sky annulus and a robust sky estimate).
+Lindeberg, T. (1998), Feature detection with automatic scale selection, IJCV 30, 79
+(scale-normalised Laplacian of Gaussian).
+Kuglin, C. D. and Hines, D. C. (1975), The phase correlation image alignment method,
+Proc. IEEE Int. Conf. Cybernetics and Society, 163.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import warnings
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
+from functools import lru_cache
+from importlib import resources
+from pathlib import Path
+from typing import Any, Literal
+
+import cv2
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+from scipy import ndimage
+
+from ._io import write_json_atomic
+from .errors import InputFormatError, NoSpotsWarning, SpotError
+
+__all__ = [
+    "SPOTS_FORMAT",
+    "SPOTS_VERSION",
+    "Spot",
+    "BackgroundRegion",
+    "SpotSet",
+    "Cutout",
+    "make_spot",
+    "load_spots",
+    "save_spots",
+    "spots_to_dict",
+    "spots_from_dict",
+    "spot_cutout",
+    "region_cutout",
+    "annulus_cutout",
+    "order_row_major",
+    "background_surface",
+    "log_blobs",
+    "detect_spots",
+    "ProjectionAccumulator",
+    "drift_plane",
+    "downscale_for_drift",
+    "estimate_shift",
+    "DriftTracker",
+]
+
+SPOTS_FORMAT = "ecl-quant-spots"
+SPOTS_VERSION = 1
+
+ShapeName = Literal["circle", "rect", "polygon"]
+_SHAPES = ("circle", "rect", "polygon")
+_MAD_TO_SD = 1.482602218505602  # 1 / Phi^-1(3/4): MAD -> SD for a normal distribution
+
+
+# ---------------------------------------------------------------- geometry
+
+
+def _shape_geometry(shape: str, params: tuple[float, ...]) -> tuple[float, float, float, float]:
+    """(x_px, y_px, area_px, extent_px) of a shape: centroid, area, max centroid distance."""
+    if shape == "circle":
+        x, y, r = params
+        return float(x), float(y), math.pi * r * r, float(r)
+    if shape == "rect":
+        x0, y0, x1, y1 = params
+        cx, cy = (x0 + x1) / 2.0, (y0 + y1) / 2.0
+        return cx, cy, (x1 - x0) * (y1 - y0), math.hypot(x1 - x0, y1 - y0) / 2.0
+    pts = np.asarray(params, dtype=np.float64).reshape(-1, 2)
+    x, y = pts[:, 0], pts[:, 1]
+    xn, yn = np.roll(x, -1), np.roll(y, -1)
+    cross = x * yn - xn * y
+    a2 = float(cross.sum())  # twice the signed area (shoelace)
+    if abs(a2) < 1e-12:
+        return float(x.mean()), float(y.mean()), 0.0, 0.0
+    cx = float(((x + xn) * cross).sum() / (3.0 * a2))
+    cy = float(((y + yn) * cross).sum() / (3.0 * a2))
+    extent = float(np.hypot(x - cx, y - cy).max())
+    return cx, cy, abs(a2) / 2.0, extent
+
+
+def _shape_bounds(shape: str, params: tuple[float, ...]) -> tuple[float, float, float, float]:
+    """(x_min, y_min, x_max, y_max) of a shape in continuous pixel coordinates."""
+    if shape == "circle":
+        x, y, r = params
+        return x - r, y - r, x + r, y + r
+    if shape == "rect":
+        return params[0], params[1], params[2], params[3]
+    pts = np.asarray(params, dtype=np.float64).reshape(-1, 2)
+    return (float(pts[:, 0].min()), float(pts[:, 1].min()),
+            float(pts[:, 0].max()), float(pts[:, 1].max()))
+
+
+def _check_params(shape: str, params: tuple[float, ...], what: str) -> None:
+    if shape not in _SHAPES:
+        raise SpotError(f"{what}: shape {shape!r} is not one of circle, rect, polygon")
+    if not all(math.isfinite(p) for p in params):
+        raise SpotError(f"{what}: coordinates must be finite numbers, got {params}")
+    if shape == "circle":
+        if len(params) != 3 or params[2] <= 0:
+            raise SpotError(f"{what}: a circle needs x, y and a radius > 0")
+    elif shape == "rect":
+        if len(params) != 4 or params[2] <= params[0] or params[3] <= params[1]:
+            raise SpotError(f"{what}: a rect needs x0 < x1 and y0 < y1")
+    else:
+        if len(params) < 6 or len(params) % 2:
+            raise SpotError(f"{what}: a polygon needs at least 3 points")
+        if _shape_geometry(shape, params)[2] <= 0:
+            raise SpotError(f"{what}: the polygon encloses no area")
+
+
+# ---------------------------------------------------------------- spot types
+
+
+@dataclass(frozen=True)
+class Spot:
+    """One region of interest (an electrode spot).
+
+    Attributes
+    ----------
+    number : int
+        1-based number, row-major over the card for detected spots.
+    shape : {"circle", "rect", "polygon"}
+    params : tuple of float
+        circle ``(x, y, radius)``; rect ``(x0, y0, x1, y1)`` (edges); polygon
+        ``(x0, y0, x1, y1, ...)`` (vertices), all in pixels.
+    x_px, y_px : float
+        Centroid of the shape in pixels.
+    radius_px : float
+        Circle radius, or the radius of the circle of equal area for other shapes.
+    area_px : float
+        Geometric area of the shape in pixels.
+    label : str
+        Optional free text (for example a well name).
+    """
+
+    number: int
+    shape: ShapeName
+    params: tuple[float, ...]
+    x_px: float
+    y_px: float
+    radius_px: float
+    area_px: float
+    label: str = ""
+
+    def __post_init__(self) -> None:
+        if int(self.number) != self.number or self.number < 1:
+            raise SpotError(f"spot numbers must be integers >= 1, got {self.number!r}")
+        _check_params(self.shape, self.params, f"spot {self.number}")
+
+    @property
+    def extent_px(self) -> float:
+        """Largest distance from the centroid to the outline, in pixels."""
+        return _shape_geometry(self.shape, self.params)[3]
+
+    @property
+    def bounds(self) -> tuple[float, float, float, float]:
+        """(x_min, y_min, x_max, y_max) in pixels."""
+        return _shape_bounds(self.shape, self.params)
+
+
+def make_spot(number: int, shape: ShapeName, params: Sequence[float], *, label: str = "") -> Spot:
+    """Build a :class:`Spot`, computing its centroid, radius and area from ``params``.
+
+    Parameters
+    ----------
+    number : int
+        1-based spot number.
+    shape : {"circle", "rect", "polygon"}
+    params : sequence of float
+        See :class:`Spot`.
+    label : str, optional
+
+    Raises
+    ------
+    SpotError
+        If the shape is unknown or degenerate.
+    """
+    p = tuple(float(v) for v in params)
+    _check_params(shape, p, f"spot {number}")
+    x, y, area, _ = _shape_geometry(shape, p)
+    radius = p[2] if shape == "circle" else math.sqrt(area / math.pi)
+    return Spot(int(number), shape, p, x, y, float(radius), float(area), label)
+
+
+@dataclass(frozen=True)
+class BackgroundRegion:
+    """A user-given background region.
+
+    Attributes
+    ----------
+    shape : {"circle", "rect", "polygon"}
+    params : tuple of float
+        As for :class:`Spot`.
+    spots : tuple of int
+        Numbers of the spots that use this region; empty means every spot that has no
+        region of its own.
+    """
+
+    shape: ShapeName
+    params: tuple[float, ...]
+    spots: tuple[int, ...] = ()
+
+    def __post_init__(self) -> None:
+        _check_params(self.shape, self.params, "background region")
+
+
+@dataclass(frozen=True, eq=False)
+class SpotSet:
+    """A validated, frozen set of spots (and optional background regions).
+
+    Attributes
+    ----------
+    spots : tuple of Spot
+        In numbering order.
+    frame_shape : (int, int) or None
+        (H, W) of the frames the spots were defined on, when known.
+    backgrounds : tuple of BackgroundRegion
+    provenance : dict
+        How the spots were obtained (detection method and parameters, or the file).
+    """
+
+    spots: tuple[Spot, ...]
+    frame_shape: tuple[int, int] | None = None
+    backgrounds: tuple[BackgroundRegion, ...] = ()
+    provenance: Mapping[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        numbers = [s.number for s in self.spots]
+        if len(set(numbers)) != len(numbers):
+            dup = sorted({n for n in numbers if numbers.count(n) > 1})
+            raise SpotError(f"spot numbers must be unique; repeated: {dup}")
+        known = set(numbers)
+        for bg in self.backgrounds:
+            missing = [n for n in bg.spots if n not in known]
+            if missing:
+                raise SpotError(f"background region refers to unknown spot(s) {missing}")
+
+    def __len__(self) -> int:
+        return len(self.spots)
+
+    def __iter__(self) -> Iterator[Spot]:
+        return iter(self.spots)
+
+    def __getitem__(self, i: int) -> Spot:
+        return self.spots[i]
+
+    @property
+    def numbers(self) -> list[int]:
+        """Spot numbers in order."""
+        return [s.number for s in self.spots]
+
+    def check_fits(self, shape: tuple[int, int], *, path: str | Path | None = None) -> None:
+        """Raise :class:`SpotError` unless every spot and region lies inside the frame.
+
+        Parameters
+        ----------
+        shape : (int, int)
+            (H, W) of the recording.
+        path : str or Path, optional
+            Spot file to name in the error.
+        """
+        h, w = shape
+        items: list[tuple[str, str, tuple[float, ...]]] = [
+            (f"spot {s.number}", s.shape, s.params) for s in self.spots]
+        items += [(f"background region {i + 1}", b.shape, b.params)
+                  for i, b in enumerate(self.backgrounds)]
+        for what, shp, params in items:
+            x0, y0, x1, y1 = _shape_bounds(shp, params)
+            if x0 < -0.5 or y0 < -0.5 or x1 > w - 0.5 or y1 > h - 0.5:
+                raise SpotError(
+                    f"{what} ({shp} spanning x {x0:g}..{x1:g}, y {y0:g}..{y1:g} px) is not "
+                    f"inside the {w}x{h} frame; spot coordinates are pixels of the recording "
+                    "after rotation: move or shrink it", path=path)
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per spot: number, shape, x_px, y_px, radius_px, area_px, label."""
+        return pd.DataFrame(
+            {"spot": [s.number for s in self.spots],
+             "shape": [s.shape for s in self.spots],
+             "x_px": [s.x_px for s in self.spots],
+             "y_px": [s.y_px for s in self.spots],
+             "radius_px": [s.radius_px for s in self.spots],
+             "area_px": [s.area_px for s in self.spots],
+             "label": [s.label for s in self.spots]},
+            columns=["spot", "shape", "x_px", "y_px", "radius_px", "area_px", "label"])
+
+
+# ---------------------------------------------------------------- spot files
+
+
+@lru_cache(maxsize=1)
+def _schema() -> dict[str, Any]:
+    text = resources.files("ecl_quant").joinpath("schemas/spots.schema.json").read_text("utf-8")
+    return json.loads(text)  # type: ignore[no-any-return]
+
+
+def _shape_to_json(shape: str, params: tuple[float, ...]) -> dict[str, Any]:
+    if shape == "circle":
+        return {"shape": "circle", "x": params[0], "y": params[1], "radius": params[2]}
+    if shape == "rect":
+        return {"shape": "rect", "x0": params[0], "y0": params[1], "x1": params[2], "y1": params[3]}
+    pts = [[params[i], params[i + 1]] for i in range(0, len(params), 2)]
+    return {"shape": "polygon", "points": pts}
+
+
+def _shape_from_json(obj: Mapping[str, Any]) -> tuple[ShapeName, tuple[float, ...]]:
+    shape = obj["shape"]
+    if shape == "circle":
+        return "circle", (float(obj["x"]), float(obj["y"]), float(obj["radius"]))
+    if shape == "rect":
+        return "rect", tuple(float(obj[k]) for k in ("x0", "y0", "x1", "y1"))
+    return "polygon", tuple(float(v) for pt in obj["points"] for v in pt)
+
+
+def spots_to_dict(spot_set: SpotSet) -> dict[str, Any]:
+    """The JSON document (a dict) for ``spot_set``; see ``schemas/spots.schema.json``."""
+    doc: dict[str, Any] = {"format": SPOTS_FORMAT, "version": SPOTS_VERSION}
+    if spot_set.frame_shape is not None:
+        doc["frame_width_px"] = int(spot_set.frame_shape[1])
+        doc["frame_height_px"] = int(spot_set.frame_shape[0])
+    doc["coordinates"] = ("pixels; x = column, y = row, pixel centres at integers, origin at "
+                          "the top-left pixel of the first frame")
+    doc["spots"] = []
+    for s in spot_set.spots:
+        item: dict[str, Any] = {"number": s.number, **_shape_to_json(s.shape, s.params)}
+        if s.label:
+            item["label"] = s.label
+        doc["spots"].append(item)
+    if spot_set.backgrounds:
+        doc["background"] = []
+        for b in spot_set.backgrounds:
+            item = _shape_to_json(b.shape, b.params)
+            if b.spots:
+                item["spots"] = list(b.spots)
+            doc["background"].append(item)
+    if spot_set.provenance:
+        doc["provenance"] = dict(spot_set.provenance)
+    return doc
+
+
+def spots_from_dict(doc: Any, *, path: str | Path | None = None) -> SpotSet:
+    """Validate a spot document against the schema and build a :class:`SpotSet`.
+
+    Raises
+    ------
+    SpotError
+        With a one-line message naming the offending entry.
+    """
+    import jsonschema
+
+    validator = jsonschema.Draft202012Validator(_schema())
+    errors = sorted(validator.iter_errors(doc), key=lambda e: (len(e.absolute_path), str(e.path)))
+    if errors:
+        err = jsonschema.exceptions.best_match(errors)
+        where = "/".join(str(p) for p in err.absolute_path) or "top level"
+        raise SpotError(f"malformed spot file at {where}: {err.message}; see "
+                        f"schemas/spots.schema.json or a spots.json written by measure",
+                        path=path)
+    if doc.get("version", SPOTS_VERSION) > SPOTS_VERSION:
+        raise SpotError(f"spot file version {doc['version']} is newer than this ecl-quant "
+                        f"understands ({SPOTS_VERSION}); upgrade ecl-quant", path=path)
+    try:
+        spots = []
+        for i, item in enumerate(doc["spots"]):
+            shape, params = _shape_from_json(item)
+            spots.append(make_spot(item.get("number", i + 1), shape, params,
+                                   label=str(item.get("label", ""))))
+        backgrounds = []
+        for item in doc.get("background", []):
+            shape, params = _shape_from_json(item)
+            backgrounds.append(BackgroundRegion(shape, params, tuple(int(n) for n in item.get("spots", []))))
+        frame_shape = None
+        if "frame_width_px" in doc and "frame_height_px" in doc:
+            frame_shape = (int(doc["frame_height_px"]), int(doc["frame_width_px"]))
+        return SpotSet(tuple(spots), frame_shape, tuple(backgrounds),
+                       dict(doc.get("provenance", {})))
+    except SpotError as err:
+        raise SpotError(err.reason, path=path) from err
+
+
+def load_spots(path: str | Path) -> SpotSet:
+    """Read a spot file (JSON; circles, rects and polygons).
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    SpotSet
+
+    Raises
+    ------
+    InputFormatError
+        If the file is missing or is not JSON.
+    SpotError
+        If it does not follow the spot schema.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError as err:
+        raise InputFormatError("spot file not found; check the --spots path", path=path) from err
+    except (OSError, UnicodeDecodeError) as err:
+        raise InputFormatError(f"cannot read the spot file ({err})", path=path) from err
+    try:
+        doc = json.loads(text)
+    except json.JSONDecodeError as err:
+        raise SpotError(f"spot file is not valid JSON (line {err.lineno}, column {err.colno}: "
+                        f"{err.msg})", path=path) from err
+    spot_set = spots_from_dict(doc, path=path)
+    return SpotSet(spot_set.spots, spot_set.frame_shape, spot_set.backgrounds,
+                   {**spot_set.provenance, "file": str(path)})
+
+
+def save_spots(spot_set: SpotSet, path: str | Path) -> None:
+    """Write ``spot_set`` as a spot file (atomically), readable by :func:`load_spots`."""
+    write_json_atomic(path, spots_to_dict(spot_set))
+
+
+# ---------------------------------------------------------------- cutouts
+
+
+@dataclass(frozen=True, eq=False)
+class Cutout:
+    """A small weight image placed in the frame.
+
+    Attributes
+    ----------
+    y0, x0 : int
+        Frame pixel index of the cutout's top-left pixel (may be negative before clipping).
+    weights : (h, w) ndarray of float32
+        Fraction of each pixel inside the region (0..1).
+    """
+
+    y0: int
+    x0: int
+    weights: NDArray[np.float32]
+
+    @property
+    def slices(self) -> tuple[slice, slice]:
+        """(row slice, column slice) of the cutout in frame pixels."""
+        h, w = self.weights.shape
+        return slice(self.y0, self.y0 + h), slice(self.x0, self.x0 + w)
+
+    @property
+    def area_px(self) -> float:
+        """Sum of the weights (effective area in pixels)."""
+        return float(self.weights.sum(dtype=np.float64))
+
+    def clipped(self, shape: tuple[int, int]) -> Cutout:
+        """The part of the cutout inside a frame of ``shape`` (H, W)."""
+        h, w = self.weights.shape
+        ya, xa = max(self.y0, 0), max(self.x0, 0)
+        yb, xb = min(self.y0 + h, shape[0]), min(self.x0 + w, shape[1])
+        if yb <= ya or xb <= xa:
+            return Cutout(ya, xa, np.zeros((0, 0), np.float32))
+        return Cutout(ya, xa, self.weights[ya - self.y0:yb - self.y0, xa - self.x0:xb - self.x0])
+
+
+def _coverage(shape: str, params: tuple[float, ...], subsample: int) -> Cutout:
+    bx0, by0, bx1, by1 = _shape_bounds(shape, params)
+    j0, i0 = math.floor(bx0 + 0.5), math.floor(by0 + 0.5)
+    j1, i1 = math.floor(bx1 + 0.5) + 1, math.floor(by1 + 0.5) + 1
+    cols = np.arange(j0, j1, dtype=np.float64)
+    rows = np.arange(i0, i1, dtype=np.float64)
+    if shape == "rect":
+        x0, y0, x1, y1 = params
+        wx = np.clip(np.minimum(cols + 0.5, x1) - np.maximum(cols - 0.5, x0), 0.0, 1.0)
+        wy = np.clip(np.minimum(rows + 0.5, y1) - np.maximum(rows - 0.5, y0), 0.0, 1.0)
+        return Cutout(i0, j0, np.outer(wy, wx).astype(np.float32))
+    n = subsample
+    off = (np.arange(n) + 0.5) / n - 0.5
+    xs = (cols[:, None] + off[None, :]).ravel()  # (W*n,)
+    ys = (rows[:, None] + off[None, :]).ravel()  # (H*n,)
+    if shape == "circle":
+        x, y, r = params
+        inside = ((ys[:, None] - y) ** 2 + (xs[None, :] - x) ** 2) <= r * r
+    else:
+        from matplotlib.path import Path as MplPath
+
+        verts = np.asarray(params, dtype=np.float64).reshape(-1, 2)
+        gx, gy = np.meshgrid(xs, ys)
+        inside = MplPath(verts).contains_points(np.column_stack([gx.ravel(), gy.ravel()]))
+        inside = inside.reshape(len(ys), len(xs))
+    cov = inside.reshape(len(rows), n, len(cols), n).mean(axis=(1, 3))
+    return Cutout(i0, j0, cov.astype(np.float32))
+
+
+def spot_cutout(spot: Spot, *, subsample: int = 8) -> Cutout:
+    """Weight cutout of a spot: fraction of each pixel's area inside the shape.
+
+    Rectangles are exact; circles and polygons are sampled on a ``subsample`` x
+    ``subsample`` grid per pixel.
+
+    Parameters
+    ----------
+    spot : Spot
+    subsample : int, optional
+        Sub-pixel samples per axis.
+
+    Returns
+    -------
+    Cutout
+        Not clipped to any frame.
+    """
+    return _coverage(spot.shape, spot.params, subsample)
+
+
+def region_cutout(region: BackgroundRegion, *, shape: tuple[int, int]) -> Cutout:
+    """0/1 cutout of a background region (pixel centres inside), clipped to ``shape``."""
+    cov = _coverage(region.shape, region.params, 4).clipped(shape)
+    return Cutout(cov.y0, cov.x0, (cov.weights >= 0.5).astype(np.float32))
+
+
+def annulus_cutout(x_px: float, y_px: float, inner_px: float, outer_px: float, *,
+                   shape: tuple[int, int],
+                   exclude: Iterable[tuple[float, float, float]] = ()) -> Cutout:
+    """0/1 cutout of an annulus, other spots masked out, clipped to the frame.
+
+    A pixel belongs to the annulus when its centre lies at a distance d with
+    ``inner_px <= d < outer_px`` from ``(x_px, y_px)`` and outside every circle
+    ``(x, y, r)`` in ``exclude``.
+
+    Parameters
+    ----------
+    x_px, y_px : float
+        Centre in pixels.
+    inner_px, outer_px : float
+        Radii in pixels, ``0 <= inner_px < outer_px``.
+    shape : (int, int)
+        (H, W) of the frame.
+    exclude : iterable of (x, y, r)
+        Circles to mask out (the other spots).
+    """
+    if not (0 <= inner_px < outer_px):
+        raise SpotError(f"annulus radii must satisfy 0 <= inner < outer, got {inner_px}, {outer_px}")
+    j0, i0 = math.floor(x_px - outer_px), math.floor(y_px - outer_px)
+    j1, i1 = math.ceil(x_px + outer_px) + 1, math.ceil(y_px + outer_px) + 1
+    cols = np.arange(j0, j1, dtype=np.float64)
+    rows = np.arange(i0, i1, dtype=np.float64)
+    d2 = (rows[:, None] - y_px) ** 2 + (cols[None, :] - x_px) ** 2
+    m = (d2 >= inner_px**2) & (d2 < outer_px**2)
+    for ex, ey, er in exclude:
+        m &= ((rows[:, None] - ey) ** 2 + (cols[None, :] - ex) ** 2) > er * er
+    return Cutout(i0, j0, m.astype(np.float32)).clipped(shape)
+
+
+# ---------------------------------------------------------------- detection
+
+
+def order_row_major(x_px: Sequence[float], y_px: Sequence[float]) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+    """Order points row-major into a grid: rows by clustering y, then x within a row.
+
+    A new row starts where the gap between consecutive sorted y centres exceeds half
+    the median nearest-neighbour distance.
+
+    Returns
+    -------
+    order : (n,) ndarray of int
+        Indices of the points in reading order.
+    row : (n,) ndarray of int
+        0-based row of each point (in input order).
+    """
+    x = np.asarray(x_px, dtype=np.float64)
+    y = np.asarray(y_px, dtype=np.float64)
+    n = len(x)
+    if n == 0:
+        return np.zeros(0, np.intp), np.zeros(0, np.intp)
+    if n == 1:
+        return np.zeros(1, np.intp), np.zeros(1, np.intp)
+    d = np.hypot(x[:, None] - x[None, :], y[:, None] - y[None, :])
+    np.fill_diagonal(d, np.inf)
+    tol = 0.5 * float(np.median(d.min(axis=1)))
+    by_y = np.argsort(y, kind="stable")
+    row = np.zeros(n, np.intp)
+    gaps = np.diff(y[by_y]) > tol
+    row[by_y] = np.concatenate([[0], np.cumsum(gaps)])
+    order = np.lexsort((x, row))
+    return order.astype(np.intp), row
+
+
+def background_surface(image: NDArray[np.floating], *, box_px: int | None = None,
+                       clip_sigma: float = 3.0) -> NDArray[np.float32]:
+    """Smooth background of an image from sigma-clipped tile medians.
+
+    The image is cut into ``box_px`` tiles; each tile's median after clipping values
+    beyond ``clip_sigma`` robust SDs is taken, the grid of medians is median-filtered
+    (3 x 3) and interpolated back to full size (bilinear).
+
+    Parameters
+    ----------
+    image : (H, W) ndarray of float
+    box_px : int, optional
+        Tile size; default ``max(16, min(H, W) // 8)``.
+    clip_sigma : float, optional
+
+    Returns
+    -------
+    (H, W) ndarray of float32
+    """
+    img = np.asarray(image, dtype=np.float32)
+    h, w = img.shape
+    box = int(box_px or max(16, min(h, w) // 8))
+    ny, nx = max(1, round(h / box)), max(1, round(w / box))
+    ys = np.linspace(0, h, ny + 1).astype(int)
+    xs = np.linspace(0, w, nx + 1).astype(int)
+    grid = np.empty((ny, nx), np.float32)
+    for a in range(ny):
+        for b in range(nx):
+            tile = img[ys[a]:ys[a + 1], xs[b]:xs[b + 1]].ravel()
+            tile = tile[np.isfinite(tile)]
+            if tile.size == 0:
+                grid[a, b] = np.nan
+                continue
+            med = np.median(tile)
+            for _ in range(3):
+                sd = _MAD_TO_SD * np.median(np.abs(tile - med))
+                if sd <= 0:
+                    break
+                keep = np.abs(tile - med) <= clip_sigma * sd
+                if keep.all():
+                    break
+                tile = tile[keep]
+                med = np.median(tile)
+            grid[a, b] = med
+    if np.isnan(grid).all():
+        return np.zeros_like(img)
+    grid = np.where(np.isnan(grid), np.nanmedian(grid), grid).astype(np.float32)
+    if min(ny, nx) >= 3:
+        grid = ndimage.median_filter(grid, size=3, mode="nearest")
+    return cv2.resize(grid, (w, h), interpolation=cv2.INTER_LINEAR)
+
+
+def _robust_sd(values: NDArray[np.floating]) -> float:
+    v = values[np.isfinite(values)]
+    if v.size == 0:
+        return 0.0
+    return float(_MAD_TO_SD * np.median(np.abs(v - np.median(v))))
+
+
+def log_blobs(image: NDArray[np.floating], *, min_sigma: float = 1.5, max_sigma: float = 20.0,
+              num_sigma: int = 12, k_sigma: float = 6.0) -> NDArray[np.float64]:
+    """Blobs as maxima of the scale-normalised Laplacian of Gaussian.
+
+    For each scale sigma the response ``-sigma**2 * LoG_sigma(image)`` is computed; a
+    blob is a local maximum over 3 x 3 pixels and the neighbouring scales whose response
+    exceeds ``k_sigma`` robust standard deviations of that scale's response. Overlapping
+    blobs (centre distance below the larger radius) keep the stronger one.
+
+    Parameters
+    ----------
+    image : (H, W) ndarray of float
+        Background-subtracted image (bright blobs positive).
+    min_sigma, max_sigma : float
+        Range of Gaussian scales in pixels (log spaced).
+    num_sigma : int
+    k_sigma : float
+
+    Returns
+    -------
+    (n, 4) ndarray of float64
+        Rows ``(y_px, x_px, sigma_px, response)``, strongest first; the blob radius is
+        about ``sqrt(2) * sigma``.
+    """
+    img = np.asarray(image, dtype=np.float32)
+    sigmas = np.geomspace(min_sigma, max_sigma, num_sigma) if num_sigma > 1 else np.array([min_sigma])
+
+    def response(s: float) -> NDArray[np.float32]:
+        return (-(s * s) * ndimage.gaussian_laplace(img, s)).astype(np.float32)
+
+    found: list[tuple[float, float, float, float]] = []
+    prev: NDArray[np.float32] | None = None
+    cur = response(float(sigmas[0]))
+    for k in range(len(sigmas)):
+        nxt = response(float(sigmas[k + 1])) if k + 1 < len(sigmas) else None
+        local = ndimage.maximum_filter(cur, size=3, mode="nearest")
+        if prev is not None:
+            local = np.maximum(local, ndimage.maximum_filter(prev, size=3, mode="nearest"))
+        if nxt is not None:
+            local = np.maximum(local, ndimage.maximum_filter(nxt, size=3, mode="nearest"))
+        thr = k_sigma * _robust_sd(cur)
+        peaks = np.argwhere((cur >= local) & (cur > thr) & (cur > 0))
+        for yy, xx in peaks:
+            found.append((float(yy), float(xx), float(sigmas[k]), float(cur[yy, xx])))
+        prev, cur = cur, nxt  # type: ignore[assignment]
+        if cur is None:
+            break
+    found.sort(key=lambda t: -t[3])
+    kept: list[tuple[float, float, float, float]] = []
+    for b in found:
+        r = math.sqrt(2) * b[2]
+        if all(math.hypot(b[0] - q[0], b[1] - q[1]) >= max(r, math.sqrt(2) * q[2]) for q in kept):
+            kept.append(b)
+    return np.array(kept, dtype=np.float64).reshape(-1, 4)
+
+
+@dataclass(frozen=True)
+class _Candidate:
+    x_px: float
+    y_px: float
+    peak: float
+    half_area_px: float
+    circularity: float
+
+
+def _measure_candidate(resid: NDArray[np.float32], y: int, x: int, half_px: int) -> _Candidate | None:
+    """Half-maximum region around a peak: weighted centroid, area, circularity."""
+    from skimage.measure import perimeter
+
+    h, w = resid.shape
+    ya, yb = max(0, y - half_px), min(h, y + half_px + 1)
+    xa, xb = max(0, x - half_px), min(w, x + half_px + 1)
+    win = resid[ya:yb, xa:xb]
+    # Refine the peak inside a small neighbourhood (LoG maxima may sit off the brightest pixel).
+    ny, nx = y - ya, x - xa
+    sub = win[max(0, ny - 2):ny + 3, max(0, nx - 2):nx + 3]
+    dy, dx = np.unravel_index(int(np.argmax(sub)), sub.shape)
+    ny, nx = max(0, ny - 2) + int(dy), max(0, nx - 2) + int(dx)
+    peak = float(win[ny, nx])
+    if not peak > 0:
+        return None
+    lab, _ = ndimage.label(win >= 0.5 * peak, structure=np.ones((3, 3)))
+    comp = lab == lab[ny, nx]
+    area = float(comp.sum())
+    per = float(perimeter(comp))
+    circ = min(1.0, 4 * math.pi * area / per**2) if per > 0 else 1.0
+    wts = np.where(comp, win, 0.0).astype(np.float64)
+    tot = wts.sum()
+    rr, cc = np.nonzero(comp)
+    cy = float((wts[rr, cc] * rr).sum() / tot) + ya
+    cx = float((wts[rr, cc] * cc).sum() / tot) + xa
+    return _Candidate(cx, cy, peak, area, circ)
+
+
+def _find_candidates(resid: NDArray[np.float32], smooth: NDArray[np.float32], noise: float, *,
+                     method: str, k_sigma: float, min_area_px: float, min_circularity: float,
+                     blobs: NDArray[np.float64] | None) -> list[_Candidate]:
+    """Seeds (threshold components or LoG blobs), measured on ``smooth``, fragments merged."""
+    seeds: list[tuple[int, int, int]] = []  # (y, x, window half size)
+    if method == "threshold":
+        lab, n = ndimage.label(smooth > k_sigma * noise, structure=np.ones((3, 3)))
+        if n:
+            objs = ndimage.find_objects(lab)
+            peaks = ndimage.maximum_position(smooth, lab, index=np.arange(1, n + 1))
+            for sl, (py, px) in zip(objs, peaks):
+                if sl is None:
+                    continue
+                size = max(sl[0].stop - sl[0].start, sl[1].stop - sl[1].start)
+                seeds.append((int(py), int(px), max(4, size)))
+    else:
+        assert blobs is not None
+        for by, bx, bs, _ in blobs:
+            seeds.append((int(by), int(bx), max(4, int(math.ceil(4 * bs)))))
+    measured = []
+    for sy, sx, half in seeds:
+        c = _measure_candidate(smooth, sy, sx, half)
+        if c is not None and c.peak >= k_sigma * noise:
+            measured.append(c)
+    # Largest first; a candidate whose centre lies inside a larger one's half-maximum
+    # radius (times 1.5) is a fragment of it (noisy dim spots break up).
+    measured.sort(key=lambda c: -c.half_area_px * c.peak)
+    cands: list[_Candidate] = []
+    for c in measured:
+        if any(math.hypot(c.x_px - o.x_px, c.y_px - o.y_px)
+               < 1.5 * math.sqrt(o.half_area_px / math.pi) for o in cands):
+            continue
+        if c.half_area_px < min_area_px or c.circularity < min_circularity:
+            continue
+        cands.append(c)
+    return cands
+
+
+def detect_spots(projection: NDArray[np.floating], *, method: Literal["threshold", "log"] = "threshold",
+                 min_area_px: float = 9.0, min_circularity: float = 0.6, k_sigma: float = 6.0,
+                 min_sigma_px: float = 1.5, max_sigma_px: float | None = None,
+                 aperture_scale: float = 1.5, aperture_radius_px: float | None = None,
+                 uniform_radius: bool = True, background_box_px: int | None = None) -> SpotSet:
+    """Find bright round spots on a projection of the dark-corrected stack.
+
+    Steps: subtract a smooth background (:func:`background_surface`), estimate the noise
+    as the robust SD of the residual, find candidates (``"threshold"``: connected
+    components above ``k_sigma`` SDs of the lightly smoothed residual; ``"log"``:
+    :func:`log_blobs`), then measure each candidate's region above half its own peak:
+    its area must be at least ``min_area_px`` and its circularity ``4 pi A / P**2`` at
+    least ``min_circularity``. The aperture radius is ``aperture_scale`` times the
+    half-maximum radius ``sqrt(A / pi)`` (the median over spots when ``uniform_radius``,
+    so that spots of one card share one aperture), or ``aperture_radius_px``. Spots are
+    numbered row-major (:func:`order_row_major`).
+
+    Parameters
+    ----------
+    projection : (H, W) ndarray of float
+        Max or sum projection in linear units (dark corrected).
+    method : {"threshold", "log"}
+    min_area_px : float
+        Minimum area above half maximum, pixels.
+    min_circularity : float
+        0..1.
+    k_sigma : float
+        Detection threshold in robust SDs of the background-subtracted projection.
+    min_sigma_px, max_sigma_px : float
+        Scale range for ``"log"`` (default max: min(H, W) / 20).
+    aperture_scale : float
+    aperture_radius_px : float, optional
+    uniform_radius : bool
+    background_box_px : int, optional
+        Tile size of the background surface.
+
+    Returns
+    -------
+    SpotSet
+        Circles; empty (with a :class:`~ecl_quant.errors.NoSpotsWarning`) when nothing is
+        found. ``provenance`` holds the parameters and per-spot detection statistics.
+    """
+    if method not in ("threshold", "log"):
+        raise SpotError(f"unknown detection method {method!r}; use 'threshold' or 'log'")
+    img = np.asarray(projection, dtype=np.float32)
+    if img.ndim != 2:
+        raise SpotError(f"projection must be a 2-D image, got shape {img.shape}")
+    h, w = img.shape
+    finite = np.isfinite(img)
+    if not finite.all():
+        img = np.where(finite, img, np.median(img[finite]) if finite.any() else 0.0).astype(np.float32)
+    bkg = background_surface(img, box_px=background_box_px)
+    resid = (img - bkg).astype(np.float32)
+    smooth = ndimage.gaussian_filter(resid, 1.0)
+    noise = _robust_sd(smooth)
+    scale = float(np.max(np.abs(img))) if img.size else 0.0
+    noise = max(noise, 1e-7 * scale, float(np.finfo(np.float32).tiny))
+    params: dict[str, Any] = {
+        "method": method, "min_area_px": min_area_px, "min_circularity": min_circularity,
+        "k_sigma": k_sigma, "aperture_scale": aperture_scale,
+        "aperture_radius_px": aperture_radius_px, "uniform_radius": uniform_radius,
+        "noise_sd": noise, "projection_max": scale}
+    max_sigma = max_sigma_px or max(min_sigma_px * 2, min(h, w) / 20)
+    if method == "log":
+        params.update(min_sigma_px=min_sigma_px, max_sigma_px=max_sigma)
+    blobs = (log_blobs(resid, min_sigma=min_sigma_px, max_sigma=max_sigma, k_sigma=k_sigma)
+             if method == "log" else None)
+    # Stage 1 on the lightly smoothed residual; stage 2 smooths at a third of the typical
+    # half-maximum radius found (a matched filter for dim spots, which break up at stage 1).
+    cands = _find_candidates(resid, smooth, noise, method=method, k_sigma=k_sigma,
+                             min_area_px=min_area_px, min_circularity=min_circularity,
+                             blobs=blobs)
+    if cands:
+        snr = np.array([c.peak / noise for c in cands])
+        radii_1 = np.array([math.sqrt(c.half_area_px / math.pi) for c in cands])
+        bright = snr >= 4 * k_sigma
+        r_typ = float(np.median(radii_1[bright] if bright.any() else radii_1))
+        sigma2 = r_typ / 3.0
+        if sigma2 > 1.5:
+            smooth2 = ndimage.gaussian_filter(resid, sigma2)
+            noise2 = max(_robust_sd(smooth2), float(np.finfo(np.float32).tiny))
+            cands2 = _find_candidates(resid, smooth2, noise2, method=method, k_sigma=k_sigma,
+                                      min_area_px=min_area_px, min_circularity=min_circularity,
+                                      blobs=blobs)
+            if len(cands2) >= len(cands) // 2:
+                cands, noise = cands2, noise2
+            params["matched_smoothing_px"] = sigma2
+    if not cands:
+        dark = scale <= 0 or (np.percentile(img, 99.9) - np.median(img)) <= k_sigma * noise
+        hint = ("the projection looks dark (nothing stands out from the noise); check the "
+                "exposure and lens, or give the spots in a file") if dark else \
+               ("nothing passed the area/circularity filters; lower min_area_px, "
+                "min_circularity or k_sigma, or give the spots in a file")
+        warnings.warn(f"no spot found: {hint}", NoSpotsWarning, stacklevel=2)
+        return SpotSet((), (h, w), (), {"detection": params, "n_found": 0})
+    half_r = np.array([math.sqrt(c.half_area_px / math.pi) for c in cands])
+    if aperture_radius_px is not None:
+        radii = np.full(len(cands), float(aperture_radius_px))
+    elif uniform_radius:
+        radii = np.full(len(cands), aperture_scale * float(np.median(half_r)))
+    else:
+        radii = aperture_scale * half_r
+    order, _ = order_row_major([c.x_px for c in cands], [c.y_px for c in cands])
+    spots = []
+    stats = []
+    for num, i in enumerate(order, start=1):
+        c = cands[i]
+        spots.append(make_spot(num, "circle", (round(c.x_px, 3), round(c.y_px, 3),
+                                               round(float(radii[i]), 3))))
+        stats.append({"spot": num, "peak": c.peak, "half_max_radius_px": float(half_r[i]),
+                      "circularity": c.circularity})
+    return SpotSet(tuple(spots), (h, w), (), {"detection": params, "n_found": len(spots),
+                                               "candidates": stats})
+
+
+# ---------------------------------------------------------------- projections
+
+
+class ProjectionAccumulator:
+    """Running max and sum over time of registered frames (memory: three (H, W) arrays).
+
+    ``add(values, shift)`` takes a frame in its own pixel grid and the integer
+    displacement ``(sx, sy)`` of its content relative to the reference frame; the
+    accumulators stay in reference coordinates.
+    """
+
+    def __init__(self, shape: tuple[int, int]) -> None:
+        self.shape = (int(shape[0]), int(shape[1]))
+        self._max = np.full(self.shape, -np.inf, np.float32)
+        self._sum = np.zeros(self.shape, np.float64)
+        self._count = np.zeros(self.shape, np.int32)
+        self.n_frames = 0
+
+    def add(self, values: NDArray[np.floating], shift: tuple[int, int] = (0, 0)) -> None:
+        """Add one frame (not modified) with integer content shift ``(sx, sy)`` in pixels."""
+        if values.shape != self.shape:
+            raise SpotError(f"frame is {values.shape[1]}x{values.shape[0]} but the projection "
+                            f"is {self.shape[1]}x{self.shape[0]}")
+        sx, sy = int(shift[0]), int(shift[1])
+        h, w = self.shape
+        ya, yb = max(0, -sy), min(h, h - sy)
+        xa, xb = max(0, -sx), min(w, w - sx)
+        if yb <= ya or xb <= xa:
+            return
+        src = values[ya + sy:yb + sy, xa + sx:xb + sx]
+        np.maximum(self._max[ya:yb, xa:xb], src, out=self._max[ya:yb, xa:xb])
+        self._sum[ya:yb, xa:xb] += src
+        self._count[ya:yb, xa:xb] += 1
+        self.n_frames += 1
+
+    @property
+    def max(self) -> NDArray[np.float32]:
+        """Max projection (NaN where no frame covered the pixel)."""
+        out = self._max.copy()
+        out[self._count == 0] = np.nan
+        return out
+
+    @property
+    def sum(self) -> NDArray[np.float32]:
+        """Sum projection, scaled to the full frame count where borders were not covered."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = self._sum / self._count
+        return (mean * self.n_frames).astype(np.float32)
+
+
+# ---------------------------------------------------------------- drift
+
+
+def drift_plane(frame: Any, channel: str = "luma") -> NDArray[np.generic]:
+    """The single 2-D plane of a frame that drift is measured on (no copy).
+
+    Video: the luma plane Y'. RGB stills: the requested colour plane (green for luma).
+    Grey stills and raw mosaics: the data itself.
+    """
+    data = frame.data
+    if data.ndim == 3:
+        idx = {"red": 0, "green": 1, "blue": 2}.get(channel, 1)
+        return data[..., idx]  # type: ignore[no-any-return]
+    return data  # type: ignore[no-any-return]
+
+
+def downscale_for_drift(plane: NDArray[np.generic], factor: int) -> NDArray[np.float32]:
+    """Box-average a plane by an integer ``factor`` (cv2.resize INTER_AREA), as float32."""
+    src = np.ascontiguousarray(plane)
+    if src.dtype not in (np.uint8, np.uint16, np.float32):
+        src = src.astype(np.float32)
+    h, w = src.shape[:2]
+    if factor <= 1:
+        return src.astype(np.float32)
+    small = cv2.resize(src, (w // factor, h // factor), interpolation=cv2.INTER_AREA)
+    return small.astype(np.float32, copy=False)
+
+
+def _refine_shift(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, dy: float,
+                  blur: float) -> tuple[float, float]:
+    """Sub-pixel peak of the cross-correlation at the 3 x 3 integer lags around (dx, dy)."""
+    if blur > 0:
+        a = cv2.GaussianBlur(a, (0, 0), blur)
+        b = cv2.GaussianBlur(b, (0, 0), blur)
+    ix, iy = int(round(dx)), int(round(dy))
+    h, w = a.shape
+    m = 2 + max(abs(ix), abs(iy))
+    if h - 2 * m < 4 or w - 2 * m < 4:
+        return dx, dy
+    core = a[m:h - m, m:w - m]
+    c = np.empty((3, 3))
+    for j, ddy in enumerate((-1, 0, 1)):
+        for i, ddx in enumerate((-1, 0, 1)):
+            sy, sx = iy + ddy, ix + ddx
+            c[j, i] = float(np.vdot(core, b[m + sy:h - m + sy, m + sx:w - m + sx]))
+
+    def vertex(left: float, mid: float, right: float) -> float | None:
+        den = left - 2.0 * mid + right
+        if not den < 0:
+            return None
+        off = 0.5 * (left - right) / den
+        return off if abs(off) <= 1.0 else None
+
+    ox = vertex(c[1, 0], c[1, 1], c[1, 2])
+    oy = vertex(c[0, 1], c[1, 1], c[2, 1])
+    return (dx if ox is None else ix + ox), (dy if oy is None else iy + oy)
+
+
+def estimate_shift(reference: NDArray[np.floating], image: NDArray[np.floating], *,
+                   window: NDArray[np.floating] | None = None,
+                   refine_blur: float | None = 1.0) -> tuple[float, float, float]:
+    """Displacement of ``image`` relative to ``reference`` by phase correlation.
+
+    Content at ``(x, y)`` in ``reference`` appears at ``(x + dx, y + dy)`` in ``image``.
+    cv2.phaseCorrelate gives the peak (and its response); its 5 x 5 centroid is biased
+    towards whole pixels, so the sub-pixel part is then refined by a parabola through
+    the cross-correlation of the (Gaussian-blurred, ``refine_blur`` px) images at the
+    3 x 3 whole-pixel lags around the peak. Inputs are not modified
+    (cv2.phaseCorrelate multiplies its inputs by the window in place, so copies are
+    passed).
+
+    Parameters
+    ----------
+    reference, image : (h, w) ndarray of float32
+    window : (h, w) ndarray of float32, optional
+        Apodisation window (e.g. cv2.createHanningWindow).
+    refine_blur : float or None, optional
+        Blur of the refinement step in pixels; None skips the refinement.
+
+    Returns
+    -------
+    dx, dy : float
+        Displacement in pixels of the inputs.
+    response : float
+        Peak response (near 1 for a clean match, a few hundredths for noise).
+    """
+    a = np.array(reference, dtype=np.float32, copy=True)
+    b = np.array(image, dtype=np.float32, copy=True)
+    a -= a.mean()
+    b -= b.mean()
+    if window is None:
+        (dx, dy), resp = cv2.phaseCorrelate(a.copy(), b.copy())
+    else:
+        win = np.asarray(window, dtype=np.float32)
+        (dx, dy), resp = cv2.phaseCorrelate(a.copy(), b.copy(), win.copy())
+        a *= win
+        b *= win
+    if refine_blur is not None and math.isfinite(dx) and math.isfinite(dy):
+        dx, dy = _refine_shift(a, b, dx, dy, float(refine_blur))
+    return float(dx), float(dy), float(resp)
+
+
+def _prepare_for_drift(small: NDArray[np.float32], highpass_px: float) -> NDArray[np.float32]:
+    """3 x 3 median (removes isolated hot pixels) minus a wide Gaussian blur (ambient)."""
+    med = cv2.medianBlur(small, 3) if min(small.shape) >= 3 else small
+    return (med - cv2.GaussianBlur(med, (0, 0), highpass_px)).astype(np.float32)
+
+
+class DriftTracker:
+    """Per-frame shift of a hand-held recording against an adaptive reference.
+
+    Each frame's drift plane is box-downscaled by ``factor`` (cv2.resize INTER_AREA);
+    a 3 x 3 median removes isolated hot pixels and subtracting a wide Gaussian blur
+    (``highpass_px`` downscaled pixels) removes the smooth ambient leak, both fixed to the
+    sensor, leaving what moves with the card (its texture and the spots). The result is
+    phase-correlated with the reference (:func:`estimate_shift`). The first frame is the
+    initial reference; a later frame replaces it when its contrast (SD of the prepared
+    frame) exceeds ``refresh_ratio`` times the reference's, so the reference follows the
+    spots as they light up. When the response is below ``min_response`` (nothing to
+    lock on, e.g. a featureless card before the emission) the last accepted shift is
+    held. A jump of more than ``max_jump_px`` from the last accepted shift is accepted
+    only with a response of at least ``strong_response`` (a spot grid is periodic, so
+    weak frames can lock on a neighbour one spacing away). Shifts are relative to the
+    card position at the first frame with measurable structure (the first frame for a
+    textured card).
+
+    Parameters
+    ----------
+    shape : (int, int)
+        (H, W) of the frames.
+    target_px : int, optional
+        Longest side of the downscaled frame.
+    min_response : float, optional
+        Smallest phase-correlation response accepted (noise alone gives about 0.04).
+    refresh_ratio : float, optional
+    highpass_px : float, optional
+    max_jump_px : float, optional
+        Default: 2 % of the longest side, at least 4 px.
+    strong_response : float, optional
+    """
+
+    def __init__(self, shape: tuple[int, int], *, target_px: int = 320,
+                 min_response: float = 0.15, refresh_ratio: float = 1.5,
+                 highpass_px: float = 6.0, max_jump_px: float | None = None,
+                 strong_response: float = 0.5) -> None:
+        h, w = int(shape[0]), int(shape[1])
+        self.factor = max(1, int(math.ceil(max(h, w) / target_px)))
+        self.small_shape = (h // self.factor, w // self.factor)
+        sh, sw = self.small_shape
+        self._window = cv2.createHanningWindow((sw, sh), cv2.CV_32F) if min(sh, sw) >= 8 else None
+        self.min_response = min_response
+        self.refresh_ratio = refresh_ratio
+        self.highpass_px = highpass_px
+        self.max_jump_px = max(4.0, 0.02 * max(h, w)) if max_jump_px is None else float(max_jump_px)
+        self.strong_response = strong_response
+        self._ref: NDArray[np.float32] | None = None
+        self._ref_shift = (0.0, 0.0)
+        self._ref_contrast = 0.0
+        self._last = (0.0, 0.0)
+        self.n_refreshes = 0
+        self.n_measured = 0
+
+    def update(self, plane: NDArray[np.generic]) -> tuple[float, float, float, bool]:
+        """Shift of this frame's content relative to the reference, in full-resolution px.
+
+        Returns
+        -------
+        dx_px, dy_px : float
+        response : float
+            Phase-correlation response (0 when nothing was measured).
+        measured : bool
+            False when the shift was held from the previous frame.
+        """
+        if self._window is None:
+            return 0.0, 0.0, 0.0, False
+        prep = _prepare_for_drift(downscale_for_drift(plane, self.factor), self.highpass_px)
+        contrast = float(prep.std())
+        if self._ref is None:
+            self._ref, self._ref_contrast = prep, contrast
+            return 0.0, 0.0, 0.0, False
+        dx, dy, resp = estimate_shift(self._ref, prep, window=self._window)
+        measured = resp >= self.min_response and math.isfinite(dx) and math.isfinite(dy)
+        if measured:
+            new = (self._ref_shift[0] + dx * self.factor, self._ref_shift[1] + dy * self.factor)
+            jump = math.hypot(new[0] - self._last[0], new[1] - self._last[1])
+            measured = jump <= self.max_jump_px or resp >= self.strong_response
+        if measured:
+            self._last = new
+            self.n_measured += 1
+        if contrast > self.refresh_ratio * self._ref_contrast:
+            self._ref, self._ref_contrast, self._ref_shift = prep, contrast, self._last
+            self.n_refreshes += 1
+        return self._last[0], self._last[1], resp if measured else 0.0, measured
