@@ -215,6 +215,148 @@ def _run_simulate(args: argparse.Namespace) -> int:
     return 0
 
 
+@_command
+def _add_calibrate(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "calibrate", help="fit a calibration to a table of standards and blanks",
+        description="ecl-quant calibrate TABLE: fit response against concentration from a "
+        "CSV or Parquet table with one row per reading (replicates as repeated rows; blanks "
+        "at concentration 0 or marked in a role column: standard, blank, unknown). Writes "
+        "calibration.json (model, parameters, covariance, s_y/x, limits, linearity tests, "
+        "units, the data used, a sha256) and calibration.png beside it.")
+    p.add_argument("table", help="CSV or Parquet table of readings")
+    p.add_argument("--x", default="concentration", metavar="COL",
+                   help="concentration column (default: concentration)")
+    p.add_argument("--y", default="response", metavar="COL",
+                   help="response column (default: response)")
+    p.add_argument("--role", default="role", metavar="COL",
+                   help="role column, if present (default: role)")
+    p.add_argument("--se", default="response_se", metavar="COL",
+                   help="measurement SE column, if present; used by --weights 1/var "
+                   "(default: response_se)")
+    p.add_argument("--model", default="auto", metavar="NAME",
+                   help="auto, linear, wls, quadratic, power, 4pl or 5pl (default: auto: the "
+                   "line if Mandel's and the lack-of-fit test accept it, else lowest AICc)")
+    p.add_argument("--weights", default=None, metavar="RULE",
+                   help="none, 1/x2, 1/y2 or 1/var (default: none)")
+    p.add_argument("--level", type=float, default=0.95,
+                   help="confidence level of intervals and bands (default: 0.95)")
+    p.add_argument("--units", default="", help="concentration units, e.g. umol/L")
+    p.add_argument("--response-units", default="", metavar="UNITS",
+                   help="response units, e.g. 'full scale x s'")
+    p.add_argument("--lod-method", default="auto", metavar="METHOD",
+                   help="primary LOD/LOQ: auto (blanks if 3 or more, else ICH), blank "
+                   "(IUPAC mean + 3 s / 10 s), intercept (Miller & Miller), ich (3.3 and "
+                   "10 sigma/S) (default: auto)")
+    p.add_argument("--readings", type=int, default=1, metavar="M",
+                   help="readings averaged per unknown, for ISO 11843 limits (default: 1)")
+    p.add_argument("--out", default="calibration.json", metavar="FILE",
+                   help="calibration file to write; the plot goes beside it as .png "
+                   "(default: calibration.json)")
+    p.add_argument("--no-plot", action="store_true", help="do not write calibration.png")
+    _common(p)
+    p.set_defaults(run=_run_calibrate)
+
+
+def _run_calibrate(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from ._io import atomic_write, ensure_dir
+    from .calibration import (CalibrationOptions, calibrate_table, plot_calibration,
+                              read_table, save_calibration)
+
+    df = read_table(args.table)
+    try:
+        opts = CalibrationOptions(lod_method=args.lod_method, readings_per_unknown=args.readings)
+        cal = calibrate_table(df, x=args.x, y=args.y, role=args.role, se=args.se,
+                              model=args.model, weights=args.weights, level=args.level,
+                              units=args.units, response_units=args.response_units,
+                              options=opts, path=args.table)
+        png = None if args.no_plot else plot_calibration(cal)
+    except EclQuantError as err:
+        if err.path is None:
+            raise type(err)(err.reason, path=args.table) from err
+        raise
+    out = Path(args.out)
+    ensure_dir(out.parent if str(out.parent) else Path("."))
+    digest = save_calibration(cal, out)
+    written = [str(out)]
+    if png is not None:
+        with atomic_write(out.with_suffix(".png"), "wb", encoding=None) as fh:
+            fh.write(png)
+        written.append(str(out.with_suffix(".png")))
+    if not args.quiet:
+        print(cal.summary())
+        print(f"wrote {', '.join(written)} (sha256 {digest[:12]}...)")
+    return 0
+
+
+@_command
+def _add_quantify(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "quantify", help="concentrations of unknowns from a calibration.json",
+        description="ecl-quant quantify TABLE --calibration calibration.json: read back "
+        "each sample (replicate rows grouped by the sample column) through the calibration: "
+        "concentration, standard error, confidence interval and flags (below_lod, "
+        "below_loq, above_range, extrapolated, no_solution). Writes results.csv and its "
+        "provenance as results.json.")
+    p.add_argument("table", help="CSV or Parquet table of readings")
+    p.add_argument("--calibration", required=True, metavar="FILE",
+                   help="calibration.json written by ecl-quant calibrate")
+    p.add_argument("--y", default="response", metavar="COL",
+                   help="response column (default: response)")
+    p.add_argument("--sample", default="sample", metavar="COL",
+                   help="sample column grouping replicates (default: sample; without it "
+                   "every row is a sample)")
+    p.add_argument("--se", default="response_se", metavar="COL",
+                   help="per-reading measurement SE column, if present (default: response_se)")
+    p.add_argument("--method", default="analytic", metavar="METHOD",
+                   help="analytic (s_x0 / delta method) or bootstrap (default: analytic)")
+    p.add_argument("--level", type=float, default=None,
+                   help="confidence level (default: the calibration's)")
+    p.add_argument("--draws", type=int, default=2000, metavar="N",
+                   help="bootstrap draws (default: 2000)")
+    p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default: 0)")
+    p.add_argument("--out", default="results.csv", metavar="FILE",
+                   help="results table (default: results.csv)")
+    _common(p)
+    p.set_defaults(run=_run_quantify)
+
+
+def _run_quantify(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from ._io import atomic_write, ensure_dir, write_json_atomic
+    from .calibration import load_calibration, quantify_table, read_table
+
+    cal = load_calibration(args.calibration)
+    df = read_table(args.table)
+    try:
+        res = quantify_table(df, cal, y=args.y, sample=args.sample, se=args.se,
+                             method=args.method, level=args.level, n_draws=args.draws,
+                             seed=args.seed, path=args.table)
+    except EclQuantError as err:
+        if err.path is None:
+            raise type(err)(err.reason, path=args.table) from err
+        raise
+    out = Path(args.out)
+    ensure_dir(out.parent if str(out.parent) else Path("."))
+    text = res.to_csv(index=False)
+    with atomic_write(out, "w") as fh:
+        fh.write(text)
+    write_json_atomic(out.with_suffix(".json"), res.attrs["provenance"])
+    if not args.quiet:
+        u = cal.units or "conc. units"
+        pct = f"{100 * res['level'].iloc[0]:g} %" if len(res) else ""
+        print(f"{len(res)} sample(s), {cal.model} calibration, {pct} intervals, units {u}")
+        for _, r in res.iterrows():
+            print(f"  {r['sample']}: {r['concentration']:.4g} +- {r['se']:.2g} {u} "
+                  f"[{r['ci_low']:.4g}, {r['ci_high']:.4g}] n={r['n']}"
+                  + (f"  ({r['flags']})" if r["flags"] else ""))
+        print(f"wrote {out}, {out.with_suffix('.json')}")
+    return 0
+
+
 # --- END COMMANDS ---
 
 
