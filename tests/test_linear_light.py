@@ -22,9 +22,20 @@ from ecl_quant.simulate import RecordingTruth, SimulationSpec, simulate_recordin
 # reference keeps the noise of the ratio near 0.5 % (measured over 6 seeds: PNG
 # 8.00 +- 0.02, JPEG q95 8.01 +- 0.02, lossless H.264 7.96 +- 0.02).
 RATIO = 8.0
-TWO_SPOTS = dict(n_rows=1, n_cols=2, amplitudes=(0.06, 0.06 * RATIO), size=(64, 96), fps=20.0,
-                 n_frames=80, onset_s=1.0, rise_s=0.15, decay_s=0.5, n_hot_pixels=0,
-                 background_rgb=(0.003, 0.003, 0.0027), ambient_fs=0.002)
+TWO_SPOTS = dict(
+    n_rows=1,
+    n_cols=2,
+    amplitudes=(0.06, 0.06 * RATIO),
+    size=(64, 96),
+    fps=20.0,
+    n_frames=80,
+    onset_s=1.0,
+    rise_s=0.15,
+    decay_s=0.5,
+    n_hot_pixels=0,
+    background_rgb=(0.003, 0.003, 0.0027),
+    ambient_fs=0.002,
+)
 
 
 def _spot_integrals(truth: RecordingTruth, *, linear: bool) -> tuple[np.ndarray, np.ndarray]:
@@ -40,7 +51,7 @@ def _spot_integrals(truth: RecordingTruth, *, linear: bool) -> tuple[np.ndarray,
     half = int(np.ceil(r_sum)) + 1
     regions, masks = [], []
     for s in spots:
-        cx, cy = int(round(s.x_px)), int(round(s.y_px))
+        cx, cy = round(s.x_px), round(s.y_px)
         rows, cols = slice(cy - half, cy + half + 1), slice(cx - half, cx + half + 1)
         yy, xx = np.mgrid[rows, cols]
         regions.append((rows, cols))
@@ -50,7 +61,9 @@ def _spot_integrals(truth: RecordingTruth, *, linear: bool) -> tuple[np.ndarray,
         row = []
         for region, mask in zip(regions, masks):
             if linear:
-                v = normalise_exposure(linear_values(frame, "red", "auto", region=region), frame.exposure_s)
+                v = normalise_exposure(
+                    linear_values(frame, "red", "auto", region=region), frame.exposure_s
+                )
             else:
                 v = channel_values(frame, "red", region=region)  # encoded codes / max
             row.append(float(v[mask].sum(dtype=np.float64)))
@@ -86,9 +99,20 @@ def test_decoded_spot_ratio_is_linear(tmp_path: Path, encoding: str) -> None:
 
 @pytest.mark.parametrize("encoding", ["jpeg", "png", "tiff16"])
 def test_exposure_metadata_round_trip(tmp_path: Path, encoding: str) -> None:
-    spec = SimulationSpec(encoding=encoding,  # type: ignore[arg-type] exposure_s=1 / 60, iso=320, exposure_change=(7, 1 / 120),
-                          vfr=True, n_frames=15, size=(64, 96), n_rows=1, n_cols=2)
+    spec = SimulationSpec(
+        encoding=encoding,  # type: ignore[arg-type]
+        exposure_s=1 / 60,
+        iso=320,
+        exposure_change=(7, 1 / 120),
+        vfr=True,
+        n_frames=15,
+        size=(64, 96),
+        n_rows=1,
+        n_cols=2,
+    )
     truth = simulate_recording(tmp_path / "rec", spec)
+    requested = [1 / 60] * 7 + [1 / 120] * 8
+    assert list(truth.frame_exposure_s) == pytest.approx(requested, rel=1e-12)
     for i, path in enumerate(truth.files):
         info = read_exif(path)
         assert info.exposure_s == pytest.approx(truth.frame_exposure_s[i], rel=1e-9)
@@ -102,8 +126,9 @@ def test_exposure_metadata_round_trip(tmp_path: Path, encoding: str) -> None:
 
 
 def test_vfr_video_timestamps(tmp_path: Path) -> None:
-    spec = SimulationSpec(encoding="h264", vfr=True, fps=30.0, n_frames=40, size=(64, 96),
-                          n_rows=1, n_cols=2, crf=20)
+    spec = SimulationSpec(
+        encoding="h264", vfr=True, fps=30.0, n_frames=40, size=(64, 96), n_rows=1, n_cols=2, crf=20
+    )
     truth = simulate_recording(tmp_path / "rec.mp4", spec)
     rec = open_recording(truth.path)
     times = np.array([f.time_s for f in rec.frames()])

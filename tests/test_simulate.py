@@ -27,6 +27,7 @@ from ecl_quant.errors import InputFormatError, OutputError, SpotError
 from ecl_quant.simulate import (
     RecordingTruth,
     SimulationSpec,
+    SpotTruth,
     ecl_pulse,
     ecl_pulse_antiderivative,
     load_truth,
@@ -45,8 +46,13 @@ SMALL = dict(size=(120, 160), n_frames=24)
 def _flat_spec(level: float, **kw: object) -> SimulationSpec:
     """No spots, no leak, no hot pixels: a uniform flat field at ``level`` FS."""
     base = dict(
-        n_rows=0, n_cols=0, ambient_fs=0.0, n_hot_pixels=0, background_rgb=(level,) * 3,
-        encoding="tiff16", n_frames=2,
+        n_rows=0,
+        n_cols=0,
+        ambient_fs=0.0,
+        n_hot_pixels=0,
+        background_rgb=(level,) * 3,
+        encoding="tiff16",
+        n_frames=2,
     )
     base.update(SMALL)
     base["n_frames"] = 2
@@ -57,10 +63,12 @@ def _flat_spec(level: float, **kw: object) -> SimulationSpec:
 # ------------------------------------------------------------------- pulse and flux
 
 
-@pytest.mark.parametrize("rise_s, decay_s, onset_s", [(0.25, 0.9, 0.5), (0.05, 3.0, 1.2), (1.0, 1.3, 0.0)])
+@pytest.mark.parametrize(
+    "rise_s, decay_s, onset_s", [(0.25, 0.9, 0.5), (0.05, 3.0, 1.2), (1.0, 1.3, 0.0)]
+)
 def test_pulse_integral_and_peak_match_scipy(rise_s: float, decay_s: float, onset_s: float) -> None:
     kw = dict(onset_s=onset_s, rise_s=rise_s, decay_s=decay_s)
-    f = lambda t: float(ecl_pulse(t, **kw))  # noqa: E731
+    f = lambda t: float(ecl_pulse(t, **kw))
     # scipy.integrate.quad (reference library): integral from onset to infinity and over a window.
     full, _ = integrate.quad(f, onset_s, np.inf, limit=200)
     assert float(ecl_pulse_antiderivative(np.inf, **kw)) == pytest.approx(full, rel=1e-9)
@@ -68,9 +76,15 @@ def test_pulse_integral_and_peak_match_scipy(rise_s: float, decay_s: float, onse
     g = ecl_pulse_antiderivative(np.array([onset_s - 0.3, onset_s + 1.7]), **kw)
     assert g[1] - g[0] == pytest.approx(part, rel=1e-9)
     # scipy.optimize (reference library): the maximum is 1, at the documented peak delay.
-    res = optimize.minimize_scalar(lambda t: -f(t), bounds=(onset_s, onset_s + 5 * decay_s),
-                                   method="bounded", options={"xatol": 1e-10})
-    spec = SimulationSpec(n_rows=1, n_cols=1, onset_s=onset_s, rise_s=rise_s, decay_s=decay_s, **SMALL)
+    res = optimize.minimize_scalar(
+        lambda t: -f(t),
+        bounds=(onset_s, onset_s + 5 * decay_s),
+        method="bounded",
+        options={"xatol": 1e-10},
+    )
+    spec = SimulationSpec(
+        n_rows=1, n_cols=1, onset_s=onset_s, rise_s=rise_s, decay_s=decay_s, **SMALL
+    )
     truth = simulate_recording_truth_only(spec)
     assert truth.spots[0].peak_time_s == pytest.approx(res.x, abs=1e-6)
     assert -res.fun == pytest.approx(1.0, abs=1e-12)
@@ -88,12 +102,16 @@ def simulate_recording_truth_only(spec: SimulationSpec) -> RecordingTruth:
 def test_spot_flux_matches_quad() -> None:
     # scipy.integrate.quad of 2 pi rho w(rho): total flux and the share inside radius_px.
     for radius, edge in [(8.0, 0.35), (5.0, 1.0), (12.0, 0.2)]:
-        w = lambda r: 2 * math.pi * r * float(spot_profile(r, radius_px=radius, edge_px=edge))  # noqa: E731
+
+        def w(r: float, radius: float = radius, edge: float = edge) -> float:
+            return 2 * math.pi * r * float(spot_profile(r, radius_px=radius, edge_px=edge))
+
         total, _ = integrate.quad(w, 0, radius + 60 * edge, points=[radius], limit=200)
         inside, _ = integrate.quad(w, 0, radius, limit=200)
         assert spot_flux_px(radius, edge) == pytest.approx(total, rel=1e-9)
-        spec = SimulationSpec(n_rows=1, n_cols=1, radius_px=radius, edge_px=edge,
-                              size=(96, 96), n_frames=3)
+        spec = SimulationSpec(
+            n_rows=1, n_cols=1, radius_px=radius, edge_px=edge, size=(96, 96), n_frames=3
+        )
         s = simulate_recording_truth_only(spec).spots[0]
         assert s.flux_px == pytest.approx(total, rel=1e-9)
         assert s.in_disk_fraction == pytest.approx(inside / total, rel=1e-7)
@@ -101,14 +119,24 @@ def test_spot_flux_matches_quad() -> None:
 
 
 def test_truth_integral_equals_quad_of_the_spot_signal(tmp_path: Path) -> None:
-    spec = SimulationSpec(rise_s=(0.2, 0.3), decay_s=(0.8, 2.5), onset_s=(0.4, 0.6),
-                          amplitudes=(0.05, 0.2), n_rows=1, n_cols=2, **SMALL, encoding="png")
+    spec = SimulationSpec(
+        rise_s=(0.2, 0.3),
+        decay_s=(0.8, 2.5),
+        onset_s=(0.4, 0.6),
+        amplitudes=(0.05, 0.2),
+        n_rows=1,
+        n_cols=2,
+        **SMALL,
+        encoding="png",
+    )
     truth = simulate_recording(tmp_path / "rec", spec)
     t0, t1 = truth.frame_times_s[0], truth.frame_times_s[-1]
     for s, amp in zip(truth.spots, (0.05, 0.2)):
         # Net signal = amplitude / exposure (FS/s at the centre) x profile area x pulse.
-        rate = lambda t: amp / spec.exposure_s * s.flux_px * float(  # noqa: E731
-            ecl_pulse(t, onset_s=s.onset_s, rise_s=s.rise_s, decay_s=s.decay_s))
+        def rate(t: float, s: SpotTruth = s, amp: float = amp) -> float:
+            pulse = ecl_pulse(t, onset_s=s.onset_s, rise_s=s.rise_s, decay_s=s.decay_s)
+            return amp / spec.exposure_s * s.flux_px * float(pulse)
+
         ref, _ = integrate.quad(rate, t0, t1, points=[s.onset_s], limit=200)  # scipy reference
         full, _ = integrate.quad(rate, s.onset_s, np.inf, limit=200)
         assert s.integral == pytest.approx(ref, rel=1e-9)
@@ -121,9 +149,20 @@ def test_rendered_spot_sums_follow_the_truth() -> None:
     # Noise made negligible (huge gain, no read noise): the rendered net spot sum of
     # every frame equals the exposure-window integral of the true signal; the trapezoid
     # rule (numpy) over the frames approaches the truth integral.
-    spec = SimulationSpec(n_rows=1, n_cols=2, amplitudes=(0.05, 0.3), gain_e_per_fs=1e12,
-                          read_noise_fs=0.0, n_hot_pixels=0, fps=30.0, n_frames=150,
-                          exposure_s=1 / 60, drift_px=1.5, size=(64, 96), encoding="png")
+    spec = SimulationSpec(
+        n_rows=1,
+        n_cols=2,
+        amplitudes=(0.05, 0.3),
+        gain_e_per_fs=1e12,
+        read_noise_fs=0.0,
+        n_hot_pixels=0,
+        fps=30.0,
+        n_frames=150,
+        exposure_s=1 / 60,
+        drift_px=1.5,
+        size=(64, 96),
+        encoding="png",
+    )
     truth = simulate_recording_truth_only(spec)
     background = next(iter(render_linear_frames(replace(spec, amplitudes=(0.0, 0.0)))))
     yy, xx = np.mgrid[0:64, 0:96]
@@ -133,14 +172,22 @@ def test_rendered_spot_sums_follow_the_truth() -> None:
         net = f[..., 0].astype(np.float64) - background[..., 0]
         # Disk of half the spacing (12 px) around the drifted centre: the spot's tail
         # beyond it is below 1e-5 of its light, and the neighbour's light stays out.
-        sums.append([net[np.hypot(xx - s.x_px - drift[i, 0], yy - s.y_px - drift[i, 1]) <= 12].sum()
-                     for s in truth.spots])
+        sums.append(
+            [
+                net[np.hypot(xx - s.x_px - drift[i, 0], yy - s.y_px - drift[i, 1]) <= 12].sum()
+                for s in truth.spots
+            ]
+        )
     sums = np.array(sums)
     times = np.array(truth.frame_times_s)
     for k, s in enumerate(truth.spots):
         e = spec.exposure_s
-        g = ecl_pulse_antiderivative(np.stack([times - e / 2, times + e / 2]), onset_s=s.onset_s,
-                                     rise_s=s.rise_s, decay_s=s.decay_s)
+        g = ecl_pulse_antiderivative(
+            np.stack([times - e / 2, times + e / 2]),
+            onset_s=s.onset_s,
+            rise_s=s.rise_s,
+            decay_s=s.decay_s,
+        )
         expected = s.peak_signal * (g[1] - g[0])  # FS per frame
         np.testing.assert_allclose(sums[:, k], expected, rtol=1e-4, atol=1e-4)
         trap = np.trapezoid(sums[:, k] / e, times)  # numpy reference
@@ -148,14 +195,15 @@ def test_rendered_spot_sums_follow_the_truth() -> None:
 
 
 def _box(s: object, pad: int = 14) -> tuple[slice, slice]:
-    x, y = int(round(s.x_px)), int(round(s.y_px))  # type: ignore[attr-defined]
+    x, y = round(s.x_px), round(s.y_px)  # type: ignore[attr-defined]
     return slice(y - pad, y + pad + 1), slice(x - pad, x + pad + 1)
 
 
 # ----------------------------------------------------------------------------- noise
 
 
-def test_flat_frame_variance_matches_emva_model(tmp_path: Path) -> None:
+@pytest.mark.parametrize("shot_noise", ["poisson", "gaussian"])
+def test_flat_frame_variance_matches_emva_model(tmp_path: Path, shot_noise: str) -> None:
     # EMVA 1288 R4.0 eq. 14 in FS units: sigma^2 = read^2 + signal/gain (+ quantisation
     # 1/12 code^2); eq. 18 temporal variance from a pair; eq. 19 relative uncertainty
     # sqrt(2/NM). Read back with tifffile (reference library).
@@ -163,7 +211,14 @@ def test_flat_frame_variance_matches_emva_model(tmp_path: Path) -> None:
     levels = [0.0, 0.05, 0.2, 0.5]
     measured, predicted = [], []
     for i, level in enumerate(levels):
-        spec = _flat_spec(level, gain_e_per_fs=gain, read_noise_fs=read, dark_level_fs=dark, seed=11 + i)
+        spec = _flat_spec(
+            level,
+            gain_e_per_fs=gain,
+            read_noise_fs=read,
+            dark_level_fs=dark,
+            seed=11 + i,
+            shot_noise=shot_noise,
+        )
         truth = simulate_recording(tmp_path / f"flat{i}", spec)
         y0, y1 = (tifffile.imread(p).astype(np.float64) / 65535.0 for p in truth.files)
         assert y0.shape == (120, 160, 3)
@@ -208,13 +263,17 @@ def test_reproducible_and_seed_dependent(tmp_path: Path) -> None:
     c = simulate_recording(tmp_path / "c", replace(spec, seed=1))
     for fa, fb in zip(a.files, b.files):
         assert np.array_equal(np.asarray(Image.open(fa)), np.asarray(Image.open(fb)))
-    assert not np.array_equal(np.asarray(Image.open(a.files[5])), np.asarray(Image.open(c.files[5])))
+    assert not np.array_equal(
+        np.asarray(Image.open(a.files[5])), np.asarray(Image.open(c.files[5]))
+    )
     assert a.to_dict() | {"path": "", "files": []} == b.to_dict() | {"path": "", "files": []}
     assert a.hot_pixels != c.hot_pixels
 
 
 def test_darks_share_hot_pixels_and_dark_level(tmp_path: Path) -> None:
-    spec = SimulationSpec(encoding="tiff16", n_hot_pixels=5, dark_level_fs=0.01, read_noise_fs=0.001, **SMALL)
+    spec = SimulationSpec(
+        encoding="tiff16", n_hot_pixels=5, dark_level_fs=0.01, read_noise_fs=0.001, **SMALL
+    )
     rec = simulate_recording(tmp_path / "rec", spec)
     darks = simulate_darks(tmp_path / "darks", spec, 6)
     assert darks.is_dark and darks.spots == () and len(darks.files) == 6
@@ -233,9 +292,20 @@ def test_darks_share_hot_pixels_and_dark_level(tmp_path: Path) -> None:
 
 
 def test_drift_moves_the_spots_by_the_recorded_shift() -> None:
-    spec = SimulationSpec(n_rows=1, n_cols=1, amplitudes=(0.5,), gain_e_per_fs=1e12, read_noise_fs=0.0,
-                          n_hot_pixels=0, ambient_fs=0.0, drift_px=2.5, size=(64, 64), n_frames=40,
-                          onset_s=-1.0, encoding="png")
+    spec = SimulationSpec(
+        n_rows=1,
+        n_cols=1,
+        amplitudes=(0.5,),
+        gain_e_per_fs=1e12,
+        read_noise_fs=0.0,
+        n_hot_pixels=0,
+        ambient_fs=0.0,
+        drift_px=2.5,
+        size=(64, 64),
+        n_frames=40,
+        onset_s=-1.0,
+        encoding="png",
+    )
     truth = simulate_recording_truth_only(spec)
     drift = np.array(truth.drift_px)
     assert np.abs(drift).max() == pytest.approx(2.5)
@@ -264,8 +334,16 @@ def test_saturated_spot_is_clipped_and_reported() -> None:
 
 
 def test_jpeg_exif_reads_back_with_pillow(tmp_path: Path) -> None:
-    spec = SimulationSpec(encoding="jpeg", exposure_s=1 / 50, iso=400, vfr=True, fps=15.0,
-                          exposure_change=(10, 1 / 100), start_time="2024-05-14T09:30:58.500", **SMALL)
+    spec = SimulationSpec(
+        encoding="jpeg",
+        exposure_s=1 / 50,
+        iso=400,
+        vfr=True,
+        fps=15.0,
+        exposure_change=(10, 1 / 100),
+        start_time="2024-05-14T09:30:58.500",
+        **SMALL,
+    )
     truth = simulate_recording(tmp_path / "jpg", spec)
     start = dt.datetime(2024, 5, 14, 9, 30, 58, 500000)
     assert len(truth.files) == spec.n_frames
@@ -287,8 +365,16 @@ def test_jpeg_exif_reads_back_with_pillow(tmp_path: Path) -> None:
 def test_tiff16_is_linear_with_exif(tmp_path: Path) -> None:
     # tifffile and OpenCV (reference readers) agree on the pixels; the Exif IFD is read by
     # Pillow and tifffile; codes / 65535 are the linear values (TIFF 6.0 baseline RGB).
-    spec = _flat_spec(0.25, read_noise_fs=0.0, gain_e_per_fs=1e12, dark_level_fs=0.0, iso=800,
-                      exposure_s=1 / 125, n_frames=3, vfr=True)
+    spec = _flat_spec(
+        0.25,
+        read_noise_fs=0.0,
+        gain_e_per_fs=1e12,
+        dark_level_fs=0.0,
+        iso=800,
+        exposure_s=1 / 125,
+        n_frames=3,
+        vfr=True,
+    )
     truth = simulate_recording(tmp_path / "tif", spec)
     start = dt.datetime(2024, 5, 14, 9, 30, 0)
     for i, path in enumerate(truth.files):
@@ -312,7 +398,9 @@ def test_tiff16_is_linear_with_exif(tmp_path: Path) -> None:
 def test_png_is_srgb_encoded_linear_light(tmp_path: Path) -> None:
     # IEC 61966-2-1 decoding of the PNG codes of a flat field gives back the linear level.
     level = 0.2
-    spec = _flat_spec(level, encoding="png", read_noise_fs=0.0, gain_e_per_fs=1e12, dark_level_fs=0.0)
+    spec = _flat_spec(
+        level, encoding="png", read_noise_fs=0.0, gain_e_per_fs=1e12, dark_level_fs=0.0
+    )
     truth = simulate_recording(tmp_path / "png", spec)
     v = np.asarray(Image.open(truth.files[0])).astype(np.float64) / 255
     lin = np.where(v <= 0.04045, v / 12.92, ((v + 0.055) / 1.055) ** 2.4)
@@ -327,7 +415,12 @@ def test_vfr_video_pts_and_colour_tags(tmp_path: Path) -> None:
         stream = container.streams.video[0]
         cc = stream.codec_context
         # BT.709 matrix / primaries / transfer, MPEG (limited) range: H.273 code 1.
-        assert (int(cc.colorspace), int(cc.color_primaries), int(cc.color_trc), int(cc.color_range)) == (1, 1, 1, 1)
+        assert (
+            int(cc.colorspace),
+            int(cc.color_primaries),
+            int(cc.color_trc),
+            int(cc.color_range),
+        ) == (1, 1, 1, 1)
         frames = list(container.decode(video=0))
         times = np.array([f.time for f in frames])
         pts600 = np.array([f.pts * f.time_base * 600 for f in frames], dtype=np.float64)
@@ -349,7 +442,9 @@ def test_vfr_video_pts_and_colour_tags(tmp_path: Path) -> None:
 
 
 def test_cfr_video_and_bitrate_option(tmp_path: Path) -> None:
-    spec = SimulationSpec(encoding="h264", fps=25.0, crf=None, bitrate=200_000, n_frames=20, size=(120, 160))
+    spec = SimulationSpec(
+        encoding="h264", fps=25.0, crf=None, bitrate=200_000, n_frames=20, size=(120, 160)
+    )
     truth = simulate_recording(tmp_path / "cfr.mp4", spec)
     with av.open(truth.files[0]) as container:
         times = np.array([f.time for f in container.decode(video=0)])
@@ -361,7 +456,9 @@ def test_cfr_video_and_bitrate_option(tmp_path: Path) -> None:
 
 
 def test_truth_json_round_trip(tmp_path: Path) -> None:
-    truth = simulate_recording(tmp_path / "card", SimulationSpec(encoding="png", drift_px=1.0, **SMALL))
+    truth = simulate_recording(
+        tmp_path / "card", SimulationSpec(encoding="png", drift_px=1.0, **SMALL)
+    )
     dest = write_truth(truth)
     assert dest == tmp_path / "card.truth.json" == truth_path(tmp_path / "card")
     assert truth_path(tmp_path / "run.mp4") == tmp_path / "run.truth.json"
@@ -370,7 +467,9 @@ def test_truth_json_round_trip(tmp_path: Path) -> None:
     assert load_truth(dest) == truth
     table = truth.to_frame()
     assert list(table["number"]) == list(range(1, 9))
-    assert SimulationSpec.from_dict(truth.spec) == SimulationSpec(encoding="png", drift_px=1.0, **SMALL)
+    assert SimulationSpec.from_dict(truth.spec) == SimulationSpec(
+        encoding="png", drift_px=1.0, **SMALL
+    )
     bad = tmp_path / "bad.json"
     bad.write_text('{"spots": 3}')
     with pytest.raises(InputFormatError):
