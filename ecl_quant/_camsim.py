@@ -251,8 +251,8 @@ def simulate_flat_pairs(
         lam = eta * mu_p * (1.0 + prnu_map) + dark_current_e_per_s * t_s
         e = rng.poisson(np.clip(lam, 0.0, None)).astype(np.float64)
         e = np.minimum(e, full_well_e)
-        dn = _signal_dn(e, truth) + gain_dn_per_e * (dsnu_map + rng.normal(0.0, read_noise_e, shape))
-        dn += dark_offset_dn
+        dark_e = dsnu_map + rng.normal(0.0, read_noise_e, shape)
+        dn = _signal_dn(e, truth) + gain_dn_per_e * dark_e + dark_offset_dn
         return np.clip(np.rint(dn), 0, max_code).astype(np.uint16)
 
     flats = [[frame(p, ti) for _ in range(frames_per_level)] for p, ti in zip(photons, t)]

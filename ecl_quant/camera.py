@@ -164,6 +164,11 @@ class PairStatistics:
     saturated_fraction : float
         Fraction of the 2NM pixel values at or above ``max_code`` (0 when no max given).
     max_code : float or None
+    observed_max_dn : float or None
+        Largest value in the pair.
+    observed_max_fraction : float
+        Fraction of the 2NM values equal to ``observed_max_dn`` (a large fraction below
+        ``max_code`` hints at a lower sensor maximum, e.g. 12-bit data in 16-bit files).
     """
 
     mean_dn: float
@@ -174,6 +179,8 @@ class PairStatistics:
     n_pixels: int
     saturated_fraction: float
     max_code: float | None
+    observed_max_dn: float | None = None
+    observed_max_fraction: float = 0.0
 
     def to_dict(self) -> dict[str, Any]:
         """Plain dict (JSON-ready)."""
@@ -224,10 +231,13 @@ def pair_statistics(image_a: ArrayLike, image_b: ArrayLike, *,
         sat = 0.0
     else:
         sat = float((np.count_nonzero(a >= max_code) + np.count_nonzero(b >= max_code)) / (2 * n))
+    top = max(a.max(), b.max())
+    top_frac = float((np.count_nonzero(a == top) + np.count_nonzero(b == top)) / (2 * n))
     return PairStatistics(
         mean_dn=0.5 * (mu_a + mu_b), mean_a_dn=mu_a, mean_b_dn=mu_b,
         temporal_variance_dn2=temporal, spatial_variance_dn2=spatial, n_pixels=int(n),
         saturated_fraction=sat, max_code=None if max_code is None else float(max_code),
+        observed_max_dn=float(top), observed_max_fraction=top_frac,
     )
 
 
@@ -382,9 +392,13 @@ def stack_statistics(frames: Iterable[ArrayLike], *, highpass: bool = False) -> 
 # ============================================================ model equations
 def variance_model(mean_above_dark_dn: ArrayLike, *, gain_dn_per_e: float,
                    dark_noise_e: float) -> NDArray[np.float64]:
-    """Photon transfer: sigma_y^2 = K^2 sigma_d^2 + sigma_q^2 + K (mu_y - mu_y.dark) (Eq. 15), DN^2."""
+    """Photon transfer, sigma_y^2 = K^2 sigma_d^2 + sigma_q^2 + K (mu_y - mu_y.dark), DN^2.
+
+    EMVA 1288 Eq. 15.
+    """
     k = gain_dn_per_e
-    return k**2 * dark_noise_e**2 + QUANTIZATION_VARIANCE_DN2 + k * np.asarray(mean_above_dark_dn, float)
+    above = np.asarray(mean_above_dark_dn, dtype=np.float64)
+    return k**2 * dark_noise_e**2 + QUANTIZATION_VARIANCE_DN2 + k * above
 
 
 def snr_model(photons: ArrayLike, *, eta: float, gain_dn_per_e: float,
@@ -967,14 +981,17 @@ class PhotonTransferResult:
                 f"saturation ({self.linearity.n_points} levels; min/max deviation "
                 f"{self.linearity.le_min_pct:+.3f} / {self.linearity.le_max_pct:+.3f} %)."
             )
-        noise = (f"< {self.dark_noise_e:.2f} e- (upper limit, Eq. 54)" if self.dark_noise_upper_limit
-                 else f"{self.dark_noise_dn:.3f} DN = {self.dark_noise_e:.2f} e-")
+        if self.dark_noise_upper_limit:
+            noise = f"< {self.dark_noise_e:.2f} e- (upper limit, Eq. 54)"
+        else:
+            noise = f"{self.dark_noise_dn:.3f} DN = {self.dark_noise_e:.2f} e-"
         out.append(
             f"System gain K = {self.gain_dn_per_e:.4f} +/- {self.gain_se_dn_per_e:.4f} DN/e- "
             f"(1/K = {1.0 / self.gain_dn_per_e:.3f} e-/DN); temporal dark noise {noise}."
         )
         if self.saturation is not None:
-            lower = " (lower bound: saturation not reached)" if self.saturation.method == "not_reached" else ""
+            lower = (" (lower bound: saturation not reached)"
+                     if self.saturation.method == "not_reached" else "")
             out.append(
                 f"Saturation capacity {self.saturation_capacity_e:.0f} e-{lower}; "
                 f"SNRmax {self.snr_max:.1f} ({20 * math.log10(max(self.snr_max, 1e-300)):.1f} dB); "
@@ -1078,10 +1095,18 @@ def analyse_photon_transfer(
     if y_sat <= 0:
         raise InputFormatError("the flat frames are not brighter than the dark frames")
     if sat.method == "not_reached":
+        hint = ""
+        top = lv[-1].flat
+        if (top.observed_max_dn is not None and top.observed_max_fraction >= 0.01
+                and (top.max_code is None or top.observed_max_dn < top.max_code)):
+            hint = (f"; {top.observed_max_fraction:.0%} of the brightest level's pixels sit at "
+                    f"code {top.observed_max_dn:g}, so the sensor maximum is probably "
+                    f"{top.observed_max_dn:g}: give it as the maximum code (--max-code)")
         notes.append("saturation was not reached: the brightest level stands in for it, so "
-                     "saturation capacity, SNRmax and dynamic range are lower bounds")
-        warnings.warn("photon transfer: no level reaches 0.1 % saturated pixels; saturation "
-                      "figures are lower bounds", CameraWarning, stacklevel=2)
+                     "saturation capacity, SNRmax and dynamic range are lower bounds" + hint)
+        warnings.warn("photon transfer: no level reaches 0.1 % of pixels at the maximum "
+                      "code; saturation figures are lower bounds" + hint, CameraWarning,
+                      stacklevel=2)
     if sat.method == "interpolated":
         notes.append("no level has 0.1-0.2 % of pixels at the maximum code; saturation was "
                      "interpolated between neighbouring levels (use finer steps near saturation)")
@@ -1597,8 +1622,10 @@ def write_camera_outputs(result: PhotonTransferResult, out_dir: str | Path) -> l
     fig, ax = plt.subplots(figsize=(6.4, 4.4))
     mu_e = x / k
     snr = tab["snr"].to_numpy()
-    ok = (mu_e > 0) & np.isfinite(snr) & (snr > 0)
-    ax.loglog(mu_e[ok], snr[ok], "o", color="C0", label="measured (Eq. 20)")
+    unsat = tab["saturated_fraction"].to_numpy() < result.provenance.get(
+        "settings", {}).get("saturation_band", (0.001, 0.002))[0]
+    ok = (mu_e > 0) & np.isfinite(snr) & (snr > 0) & unsat
+    ax.loglog(mu_e[ok], snr[ok], "o", color="C0", label="measured (Eq. 20), unsaturated levels")
     if ok.any():
         ee = np.geomspace(max(float(mu_e[ok].min()), 0.1), float(mu_e[ok].max()), 100)
         model = snr_model(ee, eta=1.0, gain_dn_per_e=k, dark_noise_e=result.dark_noise_e)

@@ -422,15 +422,17 @@ def _exif_bytes(exposure_s: float | None) -> bytes:
     return ex.tobytes()
 
 
-def _write_flat_folder(folder: Path, sim, *, manifest: bool = True) -> Path:
+def _write_flat_folder(folder: Path, sim, *, manifest: bool = True,
+                       photons: bool = False) -> Path:
     folder.mkdir(parents=True, exist_ok=True)
-    rows = ["file,role,exposure_s"]
+    rows = ["file,role,exposure_s,photons" if photons else "file,role,exposure_s"]
     for i, t in enumerate(sim.exposure_s):
         for role, frames in (("flat", sim.flats[i]), ("dark", sim.darks[i])):
             for j, arr in enumerate(frames):
                 name = f"{role}_{i:02d}_{j}.png"
                 Image.fromarray(arr).save(folder / name, exif=_exif_bytes(float(t) or 1e-6))
-                rows.append(f"{name},{role},{float(t)!r}")
+                extra = f",{float(sim.photons[i])!r}" if photons else ""
+                rows.append(f"{name},{role},{float(t)!r}{extra}")
     if manifest:
         (folder / "levels.csv").write_text("\n".join(rows) + "\n")
     return folder
@@ -463,6 +465,39 @@ def test_cli_photon_transfer(cli_sensor, tmp_path, capsys):
                           [d[:2] for d in cli_sensor.darks], cli_sensor.exposure_s,
                           max_code=4095)
     assert doc["system_gain_dn_per_e"] == pytest.approx(res.gain_dn_per_e, rel=1e-12)
+
+
+def test_manifest_photons_give_quantum_efficiency(cli_sensor, tmp_path):
+    # EMVA 1288 Eq. 49 (responsivity, zero offset) and Eq. 52 (eta = R/K); truth eta = 0.6.
+    folder = _write_flat_folder(tmp_path / "p", cli_sensor, photons=True)
+    res = camera.measure_photon_transfer(folder, max_code=4095)
+    assert res.h_unit == "photons" and res.responsivity_unit == "DN/photon"
+    assert res.eta == pytest.approx(0.6, rel=0.05)
+    assert res.responsivity == pytest.approx(0.45 * 0.6, rel=0.03)
+    assert res.sensitivity_threshold_photons == pytest.approx(
+        res.sensitivity_threshold_e / res.eta)
+
+
+def test_dark_current_from_dark_exposure_series():
+    # EMVA 1288 Eqs. 29-30: dark signal and dark variance grow linearly with exposure time;
+    # their slopes / K (and / K^2) give the dark current in e-/s. Truth: 200 e-/s.
+    sim = simulate_flat_pairs(shape=(128, 128), exposure_s=np.linspace(0, 2, 30),
+                              photon_flux_per_s=9000, dark_current_e_per_s=200, seed=6)
+    res = photon_transfer([f[:2] for f in sim.flats], [d[:2] for d in sim.darks],
+                          sim.exposure_s, max_code=sim.truth.max_code)
+    assert res.dark_current_e_per_s == pytest.approx(200, rel=0.03)
+    assert res.dark_current_variance_e_per_s == pytest.approx(200, rel=0.1)
+
+
+def test_lower_sensor_maximum_is_pointed_out():
+    # 12-bit data judged against a 16-bit maximum: saturation is never "reached", and the
+    # result says which code the pixels pile up at.
+    sim = simulate_flat_pairs(shape=(32, 32), exposure_s=np.linspace(0, 0.02, 10), seed=7)
+    with pytest.warns(camera.CameraWarning, match="probably 4095"):
+        res = photon_transfer([f[:2] for f in sim.flats], [d[:2] for d in sim.darks],
+                              sim.exposure_s, max_code=65535)
+    assert res.saturation.method == "not_reached"
+    assert any("--max-code" in n for n in res.notes)
 
 
 def test_cli_exif_grouping_with_dark_folder(cli_sensor, tmp_path, capsys):
