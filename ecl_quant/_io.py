@@ -39,6 +39,8 @@ def atomic_write(path: str | Path, mode: str = "w", *, encoding: str | None = "u
         raise OutputError(f"cannot write here ({err.strerror}); choose another --out folder",
                           path=path.parent) from err
     try:
+        # mkstemp creates 0600; give the final file the usual permissions (0666 & ~umask).
+        os.chmod(tmp, 0o666 & ~_current_umask())
         with os.fdopen(fd, mode, encoding=None if binary else encoding) as fh:
             yield fh
             fh.flush()
@@ -53,6 +55,12 @@ def atomic_write(path: str | Path, mode: str = "w", *, encoding: str | None = "u
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
+
+
+def _current_umask() -> int:
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def write_text_atomic(path: str | Path, text: str) -> None:
