@@ -152,8 +152,16 @@ def iso11843_delta(df: int, alpha: float, beta: float) -> float:
     """ISO 11843-2 delta: the noncentrality with P(T'(df, delta) <= t_{1-alpha}(df)) = beta."""
     t_a = float(stats.t.ppf(1 - alpha, df))
     t_b = float(stats.t.ppf(1 - beta, df))
-    return float(optimize.brentq(lambda dl: stats.nct.cdf(t_a, df, dl) - beta, 0.0,
-                                 t_a + t_b + 50.0, xtol=1e-12))
+
+    def excess(dl: float) -> float:
+        return float(stats.nct.cdf(t_a, df, dl)) - beta
+
+    # Bracket from just above t_a + t_b, doubling: far out in the tail scipy's noncentral
+    # t cdf returns NaN (e.g. df=4, delta=54), which brentq cannot handle.
+    hi = t_a + t_b + 1.0
+    while excess(hi) > 0 and hi < 1e6:
+        hi *= 2.0
+    return float(optimize.brentq(excess, 0.0, hi, xtol=1e-12))
 
 
 def iso11843_line(intercept: float, slope: float, s_yx: float, x: FloatArray, *,
