@@ -23,6 +23,7 @@ Output folder layout (``--out DIR``)::
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import dataclasses
 import hashlib
@@ -703,6 +704,16 @@ class OutputLock:
         os.write(fd, (json.dumps(self._info()) + "\n").encode("utf-8"))
         os.fsync(fd)
 
+    def _write_info_or_close(self, fd: int) -> None:
+        try:
+            self._write_info(fd)
+        except OSError as err:  # disk full, quota, I/O error: give the lock back
+            os.close(fd)
+            with contextlib.suppress(OSError):
+                os.unlink(self.path)
+            raise OutputError(f"cannot write the lock file ({err.strerror or err}); free "
+                              "some space or choose another --out", path=self.path) from err
+
     # -- public
     def acquire(self) -> OutputLock:
         """Take the lock.
@@ -742,7 +753,7 @@ class OutputLock:
                     os.close(fd)
                     raise self._busy(holder)
                 self.took_over = holder
-            self._write_info(fd)
+            self._write_info_or_close(fd)
             self._fd = fd
             return self
         raise self._busy(self._read_holder())  # pragma: no cover - pathological churn
@@ -761,7 +772,7 @@ class OutputLock:
                 except FileNotFoundError:
                     pass
                 continue
-            self._write_info(fd)
+            self._write_info_or_close(fd)
             self._fd = fd
             return self
         raise self._busy(self._read_holder())
