@@ -219,14 +219,28 @@ def pair_statistics(image_a: ArrayLike, image_b: ArrayLike, *,
         )
     if a.size < 2:
         raise InputFormatError("an image of the pair has fewer than two pixels")
-    af = _float_image(a)
-    bf = _float_image(b)
-    mu_a = float(af.mean())
-    mu_b = float(bf.mean())
-    n = af.size
-    diff = af - bf
-    temporal = float(np.dot(diff.ravel(), diff.ravel()) / (2.0 * n) - 0.5 * (mu_a - mu_b) ** 2)
-    spatial = float(np.dot((af - mu_a).ravel(), (bf - mu_b).ravel()) / n)
+    # Two passes over blocks of about 1 Mpixel converted to float64 one at a time, so a
+    # full phone frame never exists in float64 (float32 would lose the variance of the
+    # difference of two large means).
+    fa = a.reshape(-1)
+    fb = b.reshape(-1)
+    n = fa.size
+    step = 1 << 20
+    blocks = [slice(i, min(i + step, n)) for i in range(0, n, step)]
+    sum_a = sum_b = 0.0
+    for sl in blocks:
+        sum_a += float(np.sum(fa[sl], dtype=np.float64))
+        sum_b += float(np.sum(fb[sl], dtype=np.float64))
+    mu_a, mu_b = sum_a / n, sum_b / n
+    sum_dd = sum_cov = 0.0
+    for sl in blocks:
+        xa = fa[sl].astype(np.float64) - mu_a
+        xb = fb[sl].astype(np.float64) - mu_b
+        d = xa - xb  # (a - b) minus its mean: the Eq. 18 correction term done exactly
+        sum_dd += float(np.dot(d, d))
+        sum_cov += float(np.dot(xa, xb))
+    temporal = sum_dd / (2.0 * n)  # = (1/2NM) sum (a-b)^2 - (mu_a - mu_b)^2 / 2 (Eq. 18)
+    spatial = sum_cov / n  # Eq. 32
     if max_code is None:
         sat = 0.0
     else:
@@ -1113,7 +1127,9 @@ def analyse_photon_transfer(
 
     # System gain, Eq. 50: unknown offset and slope over 0-70 % of saturation.
     glo, ghi = settings.gain_range
-    gain_used = (above >= glo * y_sat - 1e-9 * y_sat) & (above <= ghi * y_sat)
+    gain_used = above <= ghi * y_sat  # "from the minimum" when the lower bound is 0
+    if glo > 0:
+        gain_used &= above >= glo * y_sat
     gain_used &= satf < settings.saturation_band[0]
     if np.count_nonzero(gain_used) < 3:
         raise InputFormatError(

@@ -175,6 +175,19 @@ def test_pair_statistics_against_numpy():
     assert abs(st.spatial_variance_dn2 - np.var(pattern)) < 0.1
 
 
+def test_pair_statistics_on_a_frame_larger_than_one_block():
+    # Frames above 2**20 pixels are summed block by block; numpy on the whole arrays is
+    # the reference (Eq. 18 = half the ddof=0 variance of the difference).
+    rng = np.random.default_rng(9)
+    a = rng.integers(900, 1100, (1100, 1000), dtype=np.uint16)
+    b = rng.integers(905, 1105, (1100, 1000), dtype=np.uint16)
+    st = pair_statistics(a, b)
+    af, bf = a.astype(np.float64), b.astype(np.float64)
+    assert st.temporal_variance_dn2 == pytest.approx(0.5 * np.var(af - bf), rel=1e-10)
+    assert st.spatial_variance_dn2 == pytest.approx(
+        np.cov(af.ravel(), bf.ravel(), bias=True)[0, 1], abs=1e-6)
+
+
 def test_pair_statistics_integer_input_and_saturation():
     a = np.array([[0, 4095], [10, 4095]], dtype=np.uint16)
     b = np.array([[1, 4095], [12, 4000]], dtype=np.uint16)
