@@ -80,6 +80,7 @@ _TAG_DATETIME_DIGITIZED = 0x9004
 _TAG_SUBSEC_ORIGINAL = 0x9291
 _TAG_SUBSEC_DIGITIZED = 0x9292
 _TAG_BITS_PER_SAMPLE = 0x0102
+_TAG_DNG_VERSION = 0xC612  # DNG 1.6 specification: required in IFD0 of every DNG
 
 # FFmpeg AVColorSpace values -> our matrix names. 2 = unspecified.
 _AV_COLORSPACE = {1: "bt709", 5: "bt601", 6: "bt601", 9: "bt2020", 10: "bt2020"}
@@ -635,6 +636,7 @@ class Recording:
             stream = container.streams.video[0]
             stream.thread_type = "AUTO"
             t0: float | None = None
+            t_prev = -math.inf
             fallback_rate = self._fps or _float_or_none(self.metadata.get("average_rate"))
             warned = False
             index = 0
@@ -664,6 +666,14 @@ class Recording:
                     t = index / rate
                 if t0 is None:
                     t0 = float(t)
+                elif float(t) < t_prev:
+                    raise InputFormatError(
+                        f"frame {index} is stamped {float(t) - t0:.3f} s, before frame "
+                        f"{index - 1} ({t_prev - t0:.3f} s): the timestamps go backwards, so "
+                        "the file is damaged or badly muxed: re-encode it, or record again",
+                        path=path,
+                    )
+                t_prev = float(t)
                 planes = _video_planes(fr, path)
                 if planes.y.shape != self.shape:
                     raise ShapeMismatchError(
@@ -935,6 +945,14 @@ def _read_dng(path: Path, max_pixels: int) -> tuple[
     try:
         try:
             raw.open_file(str(path))
+            tags = _read_tiff_ifd_tags(path)
+            if tags is None or _TAG_DNG_VERSION not in tags[0]:
+                # LibRaw also opens plain TIFFs, reading grey pixels as a Bayer mosaic.
+                raise InputFormatError(
+                    "named .dng but not a DNG (no DNGVersion tag); export the raw image as "
+                    "DNG from the camera app, or rename a TIFF to .tif",
+                    path=path,
+                )
             sizes = raw.sizes
             _check_pixels(int(sizes.raw_width), int(sizes.raw_height), max_pixels, path)
             raw.unpack()
