@@ -1562,8 +1562,21 @@ def _stacks(flats: list[LevelGroup], darks: list[LevelGroup], levels: list[Level
 
     d_group = max(big_darks, key=lambda g: len(g.files))
     b_stack = None
+    # The bright stack: the unsaturated flat stack nearest 50 % of saturation (section 8).
+    lv = sorted(levels, key=lambda m: m.h)
+    sat = find_saturation(
+        [m.h for m in lv], [m.flat.mean_dn for m in lv],
+        [m.flat.saturated_fraction for m in lv], [m.flat.temporal_variance_dn2 for m in lv],
+        max_code=lv[0].flat.max_code,
+        spatial_variance_dn2=[m.flat.spatial_variance_dn2 for m in lv],
+        band=settings.saturation_band)
+    y_sat = sat.mean_dn - lv[min(sat.index, len(lv) - 1)].dark.mean_dn
+    big_flats = [(g, m) for g, m in big_flats
+                 if m.flat.saturated_fraction < settings.saturation_band[0]
+                 and m.flat.mean_dn > m.dark.mean_dn]
     if big_flats:
-        g, m = max(big_flats, key=lambda gm: len(gm[0].files))
+        g, m = min(big_flats,
+                   key=lambda gm: abs(gm[1].flat.mean_dn - gm[1].dark.mean_dn - 0.5 * y_sat))
         b_stack = stack_statistics(planes(g), highpass=settings.highpass)
         same = [d for d in big_darks if d.exposure_s == g.exposure_s]
         d_group = same[0] if same else d_group

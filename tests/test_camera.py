@@ -513,6 +513,21 @@ def test_lower_sensor_maximum_is_pointed_out():
     assert any("--max-code" in n for n in res.notes)
 
 
+def test_folder_stacks_give_dsnu_and_prnu(tmp_path):
+    # EMVA 1288 Eqs. 66-67 from stacks of 16 frames found in the manifest; truth is the
+    # simulation's realised DSNU map (e-) and PRNU map (relative gain).
+    sim = simulate_flat_pairs(shape=(64, 64), exposure_s=[0.0, 0.004, 0.007, 0.011, 0.0145,
+                                                          0.016], prnu=0.01, dsnu_e=6.0,
+                              frames_per_level=16, dark_frames_per_level=16, seed=12)
+    folder = _write_flat_folder(tmp_path / "stack", sim)
+    res = camera.measure_photon_transfer(folder, max_code=4095)
+    nu = res.nonuniformity
+    assert nu.method == "stack" and nu.n_dark_frames == 16 and nu.n_bright_frames == 16
+    assert 0.3 < nu.bright_fraction_of_saturation < 0.7
+    assert nu.dsnu_e == pytest.approx(np.std(sim.dsnu_map), rel=0.1)
+    assert nu.prnu_pct == pytest.approx(100 * np.std(sim.prnu_map), rel=0.1)
+
+
 def test_cli_exif_grouping_with_dark_folder(cli_sensor, tmp_path, capsys):
     flats = tmp_path / "f"
     darks = tmp_path / "d"
