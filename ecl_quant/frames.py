@@ -430,7 +430,11 @@ def _read_still_header(path: Path, max_pixels: int) -> _StillHeader:
                 sub = {int(k): v for k, v in exif.get_ifd(ExifTags.IFD.Exif).items()}
                 bits_tag = None
                 if fmt == "TIFF":
-                    bits_tag = getattr(im, "tag_v2", {}).get(_TAG_BITS_PER_SAMPLE)
+                    tags = getattr(im, "tag_v2", {})
+                    bits_tag = tags.get(_TAG_BITS_PER_SAMPLE)
+                    # Stored (unrotated) size: Pillow may already report it oriented.
+                    width = int(tags.get(256, width))
+                    height = int(tags.get(257, height))
     except Image.DecompressionBombError as err:
         raise InputFormatError(
             f"image is larger than the limit of {max_pixels / 1e6:.1f} megapixels "
@@ -514,7 +518,10 @@ def _decode_still(header: _StillHeader) -> NDArray[Any]:
             "supported: export as 8- or 16-bit",
             path=path,
         )
-    arr = _apply_orientation(arr, header.exif.orientation)
+    if header.fmt != "TIFF":
+        # OpenCV's TIFF decoder applies the TIFF Orientation tag itself (checked against
+        # all eight cases); JPEG (Pillow) and PNG (IMREAD_UNCHANGED) come unrotated.
+        arr = _apply_orientation(arr, header.exif.orientation)
     arr.flags.writeable = False
     return arr
 

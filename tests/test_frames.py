@@ -352,11 +352,13 @@ def test_whole_second_exif_duplicates_fall_back(tmp_path):
     assert [f.time_s for f in rec.frames()] == pytest.approx([0.0, 0.1, 0.2])
 
 
+@pytest.mark.parametrize("suffix", [".png", ".jpg"])
 @pytest.mark.parametrize("orientation", range(1, 9))
-def test_exif_orientation_matches_pillow(tmp_path, orientation):
-    # Pillow's ImageOps.exif_transpose is the reference for EXIF Orientation 1..8.
+def test_exif_orientation_matches_pillow(tmp_path, orientation, suffix):
+    # Pillow's ImageOps.exif_transpose is the reference for EXIF Orientation 1..8 (for
+    # JPEG both sides use Pillow's decoder, so the comparison is exact).
     arr = np.random.default_rng(10).integers(0, 255, (6, 10, 3), np.uint8)
-    path = tmp_path / "o.png"
+    path = tmp_path / f"o{suffix}"
     exif = Image.Exif()
     exif[ExifTags.Base.Orientation] = orientation
     Image.fromarray(arr).save(path, exif=exif)
@@ -364,6 +366,27 @@ def test_exif_orientation_matches_pillow(tmp_path, orientation):
     fr = next(open_recording(path).frames())
     np.testing.assert_array_equal(fr.data, expected)
     assert open_recording(path).shape == expected.shape[:2]
+
+
+@pytest.mark.parametrize("dtype, channels", [(np.uint8, 3), (np.uint16, 1), (np.uint16, 3)])
+@pytest.mark.parametrize("orientation", [3, 6, 7, 8])
+def test_tiff_orientation(tmp_path, orientation, dtype, channels):
+    # TIFF 6.0 Orientation (tag 274) written with tifffile; the expected image is the same
+    # transform Pillow's ImageOps.exif_transpose applies to a PNG (reference above).
+    rng = np.random.default_rng(17)
+    shape = (6, 10, 3) if channels == 3 else (6, 10)
+    arr = rng.integers(0, np.iinfo(dtype).max, shape).astype(dtype)
+    tifffile.imwrite(tmp_path / "o.tif", arr, photometric="rgb" if channels == 3 else None,
+                     extratags=[(274, "H", 1, orientation)])
+    probe = np.arange(60, dtype=np.uint8).reshape(6, 10)  # where each stored pixel goes
+    exif = Image.Exif()
+    exif[ExifTags.Base.Orientation] = orientation
+    Image.fromarray(probe).save(tmp_path / "probe.png", exif=exif)
+    moved = np.asarray(ImageOps.exif_transpose(Image.open(tmp_path / "probe.png")))
+    expected = arr.reshape(60, -1)[moved.ravel()].reshape(moved.shape + shape[2:])
+    rec = open_recording(tmp_path / "o.tif")
+    assert rec.shape == moved.shape
+    np.testing.assert_array_equal(next(rec.frames()).data, expected)
 
 
 def test_jpeg_rgb_order_and_grey(tmp_path):
