@@ -83,7 +83,10 @@ class ManifestError(InputFormatError):
     def __init__(self, problems: Sequence[str], *, path: str | Path | None = None) -> None:
         self.problems = tuple(problems)
         n = len(self.problems)
-        head = f"{n} problem{'s' if n != 1 else ''} in the manifest; fix them and run again:"
+        if n == 1:  # one problem: one line (what the CLI prints)
+            super().__init__(f"{self.problems[0]}; fix it and run again", path=path)
+            return
+        head = f"{n} problems in the manifest; fix them and run again:"
         super().__init__(head + "".join(f"\n  - {p}" for p in self.problems), path=path)
 
 
