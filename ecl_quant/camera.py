@@ -1705,6 +1705,19 @@ class ResponseCurve:
     smoothness: float
     provenance: dict[str, Any] = field(default_factory=dict)
 
+    def to_dict(self) -> dict[str, Any]:
+        """Plain dict (JSON-ready): curves per channel name, scale and settings."""
+        return {
+            "channels": list(self.channels), "method": self.method,
+            "response": {c: self.response[:, i].tolist() for i, c in enumerate(self.channels)},
+            "opencv_response": {c: self.opencv_response[:, i].astype(float).tolist()
+                                for i, c in enumerate(self.channels)},
+            "full_scale": self.full_scale.tolist(),
+            "full_scale_method": list(self.full_scale_method),
+            "exposure_s": list(self.exposure_s), "samples": self.samples,
+            "smoothness": self.smoothness, "provenance": self.provenance,
+        }
+
     def to_frame(self) -> pd.DataFrame:
         """Table: code, then one column of relative linear light per channel."""
         df = pd.DataFrame({"code": np.arange(256)})

@@ -338,6 +338,9 @@ def test_debevec_matches_opencv_called_directly(srgb_bracket):
     ratio = curve.response[10:240] / direct[10:240, 0, :]
     np.testing.assert_allclose(ratio / ratio[100], 1.0, rtol=0.02)
     assert curve.full_scale_method == ("clip_threshold",) * 3
+    doc = json.loads(json.dumps(curve.to_dict()))
+    assert doc["response"]["green"] == pytest.approx(curve.response[:, 1].tolist())
+    assert list(curve.to_frame().columns) == ["code", "red", "green", "blue"]
 
 
 def test_debevec_recovers_srgb_decoding(srgb_bracket):
@@ -526,6 +529,25 @@ def test_folder_stacks_give_dsnu_and_prnu(tmp_path):
     assert 0.3 < nu.bright_fraction_of_saturation < 0.7
     assert nu.dsnu_e == pytest.approx(np.std(sim.dsnu_map), rel=0.1)
     assert nu.prnu_pct == pytest.approx(100 * np.std(sim.prnu_map), rel=0.1)
+
+
+def test_planes_of_raw_and_colour_frames():
+    # Raw mosaics are analysed on one CFA colour's photosites (a regular 2x2 lattice);
+    # colour stills on one channel; the region crops the analysed plane.
+    from ecl_quant.frames import Frame
+
+    mosaic = np.arange(8 * 10, dtype=np.uint16).reshape(8, 10)
+    cfa = np.tile(np.array([[0, 1], [3, 2]], dtype=np.uint8), (4, 5))  # R G / G2 B
+    raw = Frame(index=0, time_s=0.0, data=mosaic, max_code=1023, source="r.dng", kind="raw",
+                cfa=cfa)
+    np.testing.assert_array_equal(camera._plane(raw, "green", None), mosaic[0::2, 1::2])
+    np.testing.assert_array_equal(camera._plane(raw, "blue", None), mosaic[1::2, 1::2])
+    np.testing.assert_array_equal(camera._plane(raw, "red", (1, 1, 2, 2)), mosaic[2:6:2, 2:6:2])
+    rgb = Frame(index=0, time_s=0.0, data=np.dstack([mosaic] * 3).astype(np.uint16) * [1, 2, 3],
+                max_code=65535, source="c.tif")
+    np.testing.assert_array_equal(camera._plane(rgb, "auto", None), mosaic * 2)
+    with pytest.raises(InputFormatError, match="does not fit"):
+        camera._plane(rgb, "red", (5, 5, 10, 10))
 
 
 def test_cli_exif_grouping_with_dark_folder(cli_sensor, tmp_path, capsys):
