@@ -1087,8 +1087,11 @@ def analyse_photon_transfer(
             f"{len(levels)} flat level(s) given; photon transfer needs at least 3 "
             "(EMVA 1288 asks for 50, at least 9 for production)"
         )
-    lv = tuple(sorted(levels, key=lambda m: m.h))
     notes: list[str] = []
+    if any(m.photons is not None for m in levels) and any(m.photons is None for m in levels):
+        notes.append("photons were given for some levels only; H is exposure time x level")
+        levels = [LevelMeasurement(m.exposure_s, m.flat, m.dark, m.level, None) for m in levels]
+    lv = tuple(sorted(levels, key=lambda m: m.h))
     h = np.array([m.h for m in lv])
     mu = np.array([m.flat.mean_dn for m in lv])
     mu_dark = np.array([m.dark.mean_dn for m in lv])
