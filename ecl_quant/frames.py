@@ -291,7 +291,8 @@ def _read_tiff_ifd_tags(path: Path) -> tuple[dict[int, Any], dict[int, Any]] | N
     from PIL import TiffImagePlugin
 
     try:
-        with open(path, "rb") as fp:
+        with open(path, "rb") as fp, warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # damaged tags read as missing
             head = fp.read(8)
             if head[:4] not in (b"II*\x00", b"MM\x00*"):
                 return None
@@ -338,7 +339,9 @@ def read_exif(path: str | Path) -> ExifInfo:
         raise InputFormatError("file not found; check the path", path=p)
     try:
         with warnings.catch_warnings():
-            warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+            # Pillow warns about damaged metadata and large images; the size limit is
+            # ours, and damaged tags simply read as missing.
+            warnings.simplefilter("ignore")
             with Image.open(p) as im:
                 exif = im.getexif()
                 base = {int(k): v for k, v in exif.items()}
@@ -418,7 +421,7 @@ def _read_still_header(path: Path, max_pixels: int) -> _StillHeader:
         raise InputFormatError("file not found; check the path", path=path)
     try:
         with warnings.catch_warnings():
-            warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+            warnings.simplefilter("ignore")  # see read_exif
             with Image.open(path) as im:
                 width, height = im.size
                 fmt = str(im.format or "")
@@ -478,7 +481,7 @@ def _decode_still(header: _StillHeader) -> NDArray[Any]:
         # Pillow reports truncated JPEGs as OSError; OpenCV would fill them with grey.
         try:
             with warnings.catch_warnings():
-                warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+                warnings.simplefilter("ignore")  # see read_exif
                 with Image.open(path) as im:
                     if im.mode not in ("L", "RGB"):
                         im = im.convert("RGB")
@@ -853,6 +856,13 @@ def _open_container(path: Path) -> Any:
         container.close()
         raise InputFormatError(
             "file has no video stream (audio only?); record or export a video", path=path
+        )
+    if container.streams.video[0].codec_context is None:
+        container.close()
+        raise InputFormatError(
+            "the video codec is not recognised (damaged header or unsupported codec); "
+            "re-encode as H.264 MP4",
+            path=path,
         )
     return container
 

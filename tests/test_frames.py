@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import gc
 import inspect
+import os
 import struct
 import tracemalloc
 import weakref
@@ -641,3 +642,45 @@ def test_stills_memory_stays_flat(tmp_path):
     finally:
         tracemalloc.stop()
     assert peak < 20 * frame_bytes  # 200 frames held would be 200 x frame_bytes
+
+
+# ----------------------------------------------------------------------------- robustness
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+
+@pytest.fixture(scope="module")
+def valid_files(tmp_path_factory):
+    d = tmp_path_factory.mktemp("valid")
+    rng = np.random.default_rng(18)
+    arr = rng.integers(0, 255, (24, 32, 3), np.uint8)
+    save_jpeg_with_exif(d / "a.jpg", arr, exposure=(1, 30), iso=100,
+                        when="2024:05:01 10:00:00", subsec="5")
+    cv2.imwrite(str(d / "a.png"), arr)
+    tifffile.imwrite(d / "a.tif", arr.astype(np.uint16) * 257, photometric="rgb")
+    write_dng(d / "a.dng", (64 + rng.integers(0, 900, (32, 48))).astype(np.uint16))
+    write_yuv_video(d / "a.mp4", random_planes(rng, 32, 32, 4))
+    return {p.suffix: p.read_bytes() for p in d.iterdir()}
+
+
+@settings(max_examples=int(os.environ.get("ECL_QUANT_FUZZ_EXAMPLES", "60")), deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(data=st.data())
+def test_damaged_files_raise_typed_errors(tmp_path, valid_files, data):
+    # Any truncation or byte damage must end in a frame list or a typed ecl_quant error,
+    # never a raw library exception (contract: bad input -> InputFormatError).
+    suffix = data.draw(st.sampled_from(sorted(valid_files)))
+    blob = bytearray(valid_files[suffix])
+    cut = data.draw(st.integers(0, len(blob)))
+    flips = data.draw(st.lists(st.tuples(st.integers(0, len(blob) - 1), st.integers(0, 255)),
+                               max_size=8))
+    for pos, val in flips:
+        blob[pos] = val
+    path = tmp_path / f"damaged{suffix}"
+    path.write_bytes(bytes(blob[:cut]))
+    try:
+        for fr in open_recording(path).frames():
+            assert fr.data.ndim in (2, 3)
+    except (InputFormatError, ShapeMismatchError) as err:
+        assert err.path is not None
