@@ -669,3 +669,21 @@ def test_vfr_video_channel_time_consistency(tmp_path):
     assert [f.time_s for f in got] == pytest.approx([0, 25 / 600, 90 / 600])
     for f, (y, _, _) in zip(got, frames):
         np.testing.assert_allclose(channel_values(f, "luma"), (y - 16.0) / 219, atol=1e-6)
+
+
+def test_ten_bit_limited_range_scaling():
+    # n-bit limited range: E'Y = (Y - 16*2^(n-8)) / (219*2^(n-8)), E'C = (C - 128*2^(n-8)) /
+    # (224*2^(n-8)) (ITU-R BT.709-6 / BT.2020-2; CAMERA_NOTES 1.3: 10-bit V = (D - 64)/876).
+    y = np.array([[64, 502, 940, 1019]], np.uint16)
+    cb = np.full((1, 2), 512, np.uint16)
+    cr = np.array([[512, 960]], np.uint16)
+    fr = Frame(index=0, time_s=0.0, data=y, max_code=1023, source="m", kind="video",
+               chroma=(cb, cr), chroma_step=(1, 2), yuv_matrix="bt2020",
+               yuv_range="limited", bit_depth=10)
+    np.testing.assert_allclose(channel_values(fr, "luma")[0],
+                               [0.0, 438 / 876, 1.0, 955 / 876], atol=1e-7)
+    # BT.2020 Kr = 0.2627: R' = Y' + (2 - 2 Kr) E'Cr, with E'Cr = 448/896 = 0.5.
+    red = channel_values(fr, "red")[0]
+    np.testing.assert_allclose(red[:2], [0.0, 438 / 876], atol=1e-7)
+    np.testing.assert_allclose(red[2:], [1.0 + (2 - 2 * 0.2627) * 0.5,
+                                         955 / 876 + (2 - 2 * 0.2627) * 0.5], atol=1e-6)
