@@ -471,6 +471,38 @@ def _read_still_header(path: Path, max_pixels: int) -> _StillHeader:
 # ----------------------------------------------------------------------------- decoding
 
 
+def _check_png_chunks(data: memoryview, path: Path) -> None:
+    """Walk a PNG's chunks and verify each CRC-32 (PNG specification, section 5.3).
+
+    Damage is reported here as an InputFormatError; left to libpng it would also be
+    printed on the process's stderr, outside the CLI's one-line error.
+    """
+    import zlib
+
+    pos, n = 8, len(data)
+    while pos < n:
+        if pos + 12 > n:
+            break
+        length = int.from_bytes(data[pos:pos + 4], "big")
+        end = pos + 12 + length
+        if end > n:
+            break
+        kind = bytes(data[pos + 4:pos + 8])
+        if zlib.crc32(data[pos + 4:pos + 8 + length]) != int.from_bytes(data[end - 4:end], "big"):
+            raise InputFormatError(
+                f"PNG chunk {kind.decode('latin-1')!r} fails its CRC-32 check: the file is "
+                "damaged: copy it again or remove it",
+                path=path,
+            )
+        if kind == b"IEND":
+            return
+        pos = end
+    raise InputFormatError(
+        "PNG is truncated (it ends before its IEND chunk): copy it again or remove it",
+        path=path,
+    )
+
+
 def _decode_still(header: _StillHeader) -> NDArray[Any]:
     """Decode one still to (H, W) or (H, W, 3) uint8/uint16 RGB, orientation applied."""
     import cv2
@@ -497,6 +529,8 @@ def _decode_still(header: _StillHeader) -> NDArray[Any]:
             buf = np.fromfile(path, dtype=np.uint8)
         except OSError as err:
             raise InputFormatError(f"cannot read the file ({err})", path=path) from err
+        if header.fmt == "PNG":
+            _check_png_chunks(memoryview(buf), path)
         arr = cv2.imdecode(buf, cv2.IMREAD_UNCHANGED)
         if arr is None:
             raise InputFormatError(
