@@ -1,8 +1,8 @@
 """Command-line interface: thin subcommands over the public API.
 
 ``main(argv=None) -> int`` so tests call it directly. Exit codes: 0 ok, 1 partial
-(a batch with failed recordings), 2 bad input or usage. Deliberate errors print one
-line on stderr; ``--debug`` shows the traceback too.
+(a batch with failed recordings), 2 bad input or usage, 3 internal error (a bug).
+Errors print one line on stderr; ``--debug`` shows the traceback too.
 
 Each subcommand has an ``_add_<name>(sub)`` that declares its options and a
 ``_run_<name>(args) -> int`` that calls the API. Keep them short: logic belongs in the
@@ -405,3 +405,17 @@ def main(argv: Sequence[str] | None = None) -> int:
         except KeyboardInterrupt:
             print("error: interrupted", file=sys.stderr)
             return 130
+        except OSError as err:  # the system refused a file the stage did not wrap
+            if debug:
+                traceback.print_exc()
+            where = f"{err.filename}: " if err.filename else ""
+            print(f"error: {where}{err.strerror or err}; check the path, its permissions and "
+                  "the free disk space", file=sys.stderr)
+            return 2
+        except Exception as err:  # a defect: still one line, the traceback with --debug
+            if debug:
+                traceback.print_exc()
+            first = (str(err).splitlines() or [""])[0]
+            print(f"error: internal error ({type(err).__name__}: {first}); this is a bug in "
+                  "ecl-quant: rerun with --debug and report the traceback", file=sys.stderr)
+            return 3
