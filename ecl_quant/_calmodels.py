@@ -411,6 +411,13 @@ def _fit_logistic(model: ModelDef, u: FloatArray, v: FloatArray, w: FloatArray,
             "sigmoid (add standards on both plateaus, or use a line or quadratic on the "
             "working range)")
     theta = _int_to_theta(best.x, five, u_ref, v_lo, v_span)
+    c_fit = float(theta[2])
+    if c_fit > 10 * u_ref or c_fit < u_pos_min / 10:
+        where = "above the highest" if c_fit > 10 * u_ref else "below the lowest non-zero"
+        raise CalibrationError(
+            f"{model.name} fit is degenerate: its inflection c = {c_fit:.4g} lies more than ten "
+            f"times {where} standard, so the data show no sigmoid (no plateau); use a line, "
+            "quadratic or power law, or add standards")
     jac_full = model.jac(theta, u) * np.sqrt(w)[:, None]
     svals = np.linalg.svd(jac_full, compute_uv=False)
     if not np.all(np.isfinite(svals)) or svals.min() <= svals.max() * 1e-12:
@@ -428,8 +435,12 @@ def _fit_logistic(model: ModelDef, u: FloatArray, v: FloatArray, w: FloatArray,
 
 def _best_of(group: list[FloatArray], best: Any, resid: Callable[[FloatArray], FloatArray],
              jac: Callable[[FloatArray], FloatArray], lo: FloatArray, hi: FloatArray, five: bool,
-             model: ModelDef, messages: list[str]) -> Any:
-    """Run least_squares from each start of a group; keep the lowest converged cost."""
+             model: ModelDef, messages: list[str], first_only: bool = True) -> Any:
+    """Run least_squares from the starts of a group in turn.
+
+    With ``first_only`` the first converged start is kept (the data-driven start almost
+    always reaches the minimum); otherwise the lowest cost of all converged starts.
+    """
     for st in group:
         phi0 = np.array([st[0], np.log(st[1]), np.log(st[2]), st[3]]
                         + ([np.log(st[4])] if five else []))
@@ -451,6 +462,8 @@ def _best_of(group: list[FloatArray], best: Any, resid: Callable[[FloatArray], F
             continue
         if best is None or res.cost < best.cost:
             best = res
+        if first_only:
+            break
     return best
 
 

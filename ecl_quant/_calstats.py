@@ -19,11 +19,31 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy import optimize, stats
+from scipy import optimize, special, stats
 
 FloatArray = NDArray[np.float64]
 
-__all__ = ["lack_of_fit", "mandel_test", "grubbs_test", "iso11843_line", "loq_relative_line"]
+def t_ppf(p: float, df: float) -> float:
+    """Student t quantile (scipy.special.stdtrit: the same function as stats.t.ppf, faster)."""
+    return float(special.stdtrit(df, p))
+
+
+def t_sf(x: Any, df: float) -> Any:
+    """Student t upper tail probability."""
+    return special.stdtr(df, -np.asarray(x, float))
+
+
+def f_sf(x: float, d1: float, d2: float) -> float:
+    """F distribution upper tail probability."""
+    return float(special.fdtrc(d1, d2, x))
+
+
+def f_ppf(p: float, d1: float, d2: float) -> float:
+    """F distribution quantile."""
+    return float(special.fdtri(d1, d2, p))
+
+
+__all__ = ["t_ppf", "t_sf", "f_sf", "f_ppf", "lack_of_fit", "mandel_test", "grubbs_test", "iso11843_line", "loq_relative_line"]
 
 
 def lack_of_fit(u: FloatArray, v: FloatArray, w: FloatArray, sse_w: float, n_params: int, *,
@@ -65,7 +85,7 @@ def lack_of_fit(u: FloatArray, v: FloatArray, w: FloatArray, sse_w: float, n_par
         f_stat, p = float("inf"), 0.0
     else:
         f_stat = (ss_lof / df_lof) / (ss_pe / df_pe)
-        p = float(stats.f.sf(f_stat, df_lof, df_pe))
+        p = f_sf(f_stat, df_lof, df_pe)
     return {"available": True, "F": f_stat, "df_lack_of_fit": df_lof, "df_pure_error": df_pe,
             "ss_lack_of_fit": ss_lof, "ss_pure_error": ss_pe, "p_value": p, "alpha": alpha,
             "significant": bool(p < alpha)}
@@ -95,20 +115,21 @@ def mandel_test(n: int, sse_line: float, sse_quad: float, *, level: float = 0.99
     s2_sq = sse_quad / (n - 3)
     ds2 = (n - 2) * s1_sq - (n - 3) * s2_sq
     pg = ds2 / s2_sq if s2_sq > 0 else float("inf")
-    f_crit = float(stats.f.ppf(level, 1, n - 3))
-    p = float(stats.f.sf(pg, 1, n - 3)) if np.isfinite(pg) else 0.0
+    f_crit = f_ppf(level, 1, n - 3)
+    p = f_sf(pg, 1, n - 3) if np.isfinite(pg) else 0.0
     return {"available": True, "s_y1": float(np.sqrt(s1_sq)), "s_y2": float(np.sqrt(s2_sq)),
             "DS2": float(ds2), "PG": float(pg), "F_crit": f_crit, "df": [1, n - 3],
             "p_value": p, "level": level, "linear": bool(pg <= f_crit)}
 
 
+@lru_cache(maxsize=512)
 def grubbs_critical(n: int, alpha: float) -> float:
     """Two-sided Grubbs critical value G_crit for n readings at significance alpha.
 
     G_crit = (n - 1) / sqrt(n) * sqrt(t^2 / (n - 2 + t^2)), t the upper alpha/(2n)
     quantile of Student's t with n - 2 degrees of freedom (Grubbs 1969; ASTM E178).
     """
-    t = stats.t.isf(alpha / (2 * n), n - 2)
+    t = t_ppf(1 - alpha / (2 * n), n - 2)
     return float((n - 1) / np.sqrt(n) * np.sqrt(t * t / (n - 2 + t * t)))
 
 
@@ -138,7 +159,7 @@ def grubbs_test(values: FloatArray, *, alpha: float = 0.05) -> dict[str, Any]:
         p = 0.0
     else:
         t_g = np.sqrt(n * (n - 2) * g * g / denom)
-        p = float(min(1.0, 2 * n * stats.t.sf(t_g, n - 2)))
+        p = float(min(1.0, 2 * n * float(t_sf(t_g, n - 2))))
     return {"available": True, "n": n, "G": g, "G_crit": g_crit, "p_value": p, "alpha": alpha,
             "index": idx, "outlier": bool(g > g_crit)}
 
@@ -150,8 +171,8 @@ def _line_factor(m: int, n: int, xbar: float, sxx: float, x: float) -> float:
 @lru_cache(maxsize=256)
 def iso11843_delta(df: int, alpha: float, beta: float) -> float:
     """ISO 11843-2 delta: the noncentrality with P(T'(df, delta) <= t_{1-alpha}(df)) = beta."""
-    t_a = float(stats.t.ppf(1 - alpha, df))
-    t_b = float(stats.t.ppf(1 - beta, df))
+    t_a = t_ppf(1 - alpha, df)
+    t_b = t_ppf(1 - beta, df)
 
     def excess(dl: float) -> float:
         return float(stats.nct.cdf(t_a, df, dl)) - beta
@@ -194,8 +215,8 @@ def iso11843_line(intercept: float, slope: float, s_yx: float, x: FloatArray, *,
     sxx = float(np.sum((x - xbar) ** 2))
     s_x0 = s_yx / abs(slope)
     fac0 = _line_factor(m, n, xbar, sxx, 0.0)
-    t_a = float(stats.t.ppf(1 - alpha, df))
-    t_b = float(stats.t.ppf(1 - beta, df))
+    t_a = t_ppf(1 - alpha, df)
+    t_b = t_ppf(1 - beta, df)
     x_c = t_a * s_x0 * fac0
     y_c = intercept + np.sign(slope) * t_a * s_yx * fac0
     delta = iso11843_delta(df, alpha, beta)
@@ -225,7 +246,7 @@ def loq_relative_line(slope: float, s_yx: float, x: FloatArray, *, k: float = 3.
     n = len(x)
     xbar = float(x.mean())
     sxx = float(np.sum((x - xbar) ** 2))
-    t2 = float(stats.t.ppf(1 - alpha / 2, n - 2))
+    t2 = t_ppf(1 - alpha / 2, n - 2)
     s_x0 = s_yx / abs(slope)
 
     def h(xq: float) -> float:

@@ -44,11 +44,12 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike, NDArray
-from scipy import optimize, stats
+from scipy import optimize
 
 from . import __version__
 from ._calmodels import MODELS, FitResult, ModelDef, batch_refit, fit_model, fit_to_public, public_to_fit
-from ._calstats import grubbs_test, iso11843_line, lack_of_fit, loq_relative_line, mandel_test
+from ._calstats import (grubbs_test, iso11843_line, lack_of_fit, loq_relative_line, mandel_test,
+                        t_ppf, t_sf)
 from .errors import CalibrationError, InputFormatError
 
 FloatArray = NDArray[np.float64]
@@ -174,8 +175,10 @@ class InversePrediction:
     variance_source : str
         ``calibration`` (s_y/x and the weight at the unknown) or ``reading`` (its y_se
         was larger).
-    df : int
-        Degrees of freedom of the t quantile.
+    df : float
+        Degrees of freedom of the t quantile: n - p, or the Welch-Satterthwaite effective
+        degrees of freedom when the unknown's own y_se (infinite df) carries part of the
+        variance.
     units : str
         Concentration units.
     n_draws, n_failed : int
@@ -193,7 +196,7 @@ class InversePrediction:
     response_mean: float
     response_se: float
     variance_source: str
-    df: int
+    df: float
     units: str = ""
     n_draws: int = 0
     n_failed: int = 0
@@ -463,7 +466,7 @@ class Calibration:
         return 1.0 / np.interp(xx, levels, inv_w)
 
     def _t(self, level: float, df: int | None = None) -> float:
-        return float(stats.t.ppf(0.5 + level / 2.0, self.df if df is None else df))
+        return t_ppf(0.5 + level / 2.0, self.df if df is None else df)
 
     def _delta_var_u(self, u0: FloatArray, var_v0: FloatArray, theta: FloatArray | None = None,
                      cov: FloatArray | None = None) -> FloatArray:
@@ -477,8 +480,12 @@ class Calibration:
             return (var_v0 + gcg) / slope**2
 
     def _reading_var(self, y_read: FloatArray, y_se: FloatArray | None, x0: float,
-                     weight: float | None, s2: float | FloatArray) -> tuple[Any, Any, str]:
-        """Per-reading variance in fit space: max(s2 / w0, y_se^2); returns (var, w0, source)."""
+                     weight: float | None, s2: float | FloatArray) -> tuple[Any, str, Any]:
+        """Per-reading variance in fit space, max(s2 / w0, y_se^2).
+
+        Returns the variances (..., m), the source label, and a mask of the readings whose
+        variance comes from the calibration's s^2 (n - p df) rather than their own y_se.
+        """
         if weight is not None:
             w0 = np.full(y_read.shape, float(weight))
         elif self.weights == "1/var" and y_se is not None:
@@ -488,11 +495,11 @@ class Calibration:
                                  y_read.shape).astype(float)
         var_cal = np.asarray(s2)[..., None] / w0
         if y_se is None:
-            return var_cal, w0, "calibration"
-        se_v = self._se_fit(y_read, y_se)
-        var = np.maximum(var_cal, se_v**2)
-        src = "reading" if np.all(se_v**2 > np.asarray(s2).mean() / w0) else "calibration"
-        return var, w0, src
+            return var_cal, "calibration", np.ones(var_cal.shape, bool)
+        se_sq = self._se_fit(y_read, y_se) ** 2
+        from_s = var_cal >= se_sq
+        src = "calibration" if np.all(from_s) else "reading"
+        return np.maximum(var_cal, se_sq), src, from_s
 
     def _se_fit(self, y_read: FloatArray, y_se: FloatArray) -> FloatArray:
         """Reading SEs in fit space (relative SE for the log-space power law)."""
@@ -561,17 +568,25 @@ class Calibration:
             y_mean = float(np.mean(y_read))
             u0 = float(self._mdef.inv(self._theta, np.array([v0]), self._branch)[0])
             x0 = float(self._from_u(u0)) if np.isfinite(u0) else float("nan")
-            var_r, w0, src = self._reading_var(y_read, se_arr, x0, weight, self._s2)
+            var_r, src, from_s = self._reading_var(y_read, se_arr, x0, weight, self._s2)
             var_v0 = float(np.sum(var_r) / m**2)
             flags = self._flags(x0, v0)
             n_failed = 0
+            df_eff = float(self.df)
             if not np.isfinite(u0) or not np.isfinite(v0):
                 se = lo = hi = float("nan")
                 meth = "none"
             elif boot is None:
                 var_u = float(self._delta_var_u(np.array([u0]), var_v0)[0])
                 se_u = float(np.sqrt(var_u))
-                lo_u, hi_u = u0 - t * se_u, u0 + t * se_u
+                # Welch-Satterthwaite: the part from the calibration (parameters, and readings
+                # whose variance is s^2 / w) has n - p df; a reading's own y_se has infinite df
+                var_s_part = float(self._delta_var_u(
+                    np.array([u0]), float(np.sum(var_r[from_s])) / m**2)[0])
+                df_eff = float(self.df) if var_s_part >= var_u else \
+                    var_u**2 / (var_s_part**2 / self.df)
+                t_eff = t if df_eff == self.df else self._t(level, df_eff)
+                lo_u, hi_u = u0 - t_eff * se_u, u0 + t_eff * se_u
                 se = x0 * se_u if self._mdef.log_space else se_u
                 lo, hi = float(self._from_u(lo_u)), float(self._from_u(hi_u))
                 meth = "classical" if self.model in ("linear", "wls") else "delta"
@@ -582,7 +597,8 @@ class Calibration:
             out.append(InversePrediction(
                 concentration=x0, se=float(se), ci_low=float(lo), ci_high=float(hi),
                 flags=flags, level=level, method=meth, n_readings=m, response_mean=y_mean,
-                response_se=float(np.sqrt(var_v0)), variance_source=src, df=self.df,
+                response_se=float(np.sqrt(var_v0)), variance_source=src,
+                df=df_eff if boot is None and np.isfinite(u0) else float(self.df),
                 units=self.units, n_draws=0 if boot is None else n_draws, n_failed=n_failed))
         return out
 
@@ -1113,7 +1129,7 @@ def _slope_note(cal: Calibration) -> str | None:
     if cal.model not in ("linear", "wls"):
         return None
     b, sb = cal.params[1], float(np.sqrt(cal.covariance[1, 1]))
-    p = 2 * stats.t.sf(abs(b) / sb, cal.df) if sb > 0 else 0.0
+    p = 2 * float(t_sf(abs(b) / sb, cal.df)) if sb > 0 else 0.0
     if p > 0.05:
         return f"the slope is not significantly different from zero (p = {p:.3g})"
     return None
@@ -1285,9 +1301,9 @@ def _loq_relative(cal: Calibration, opts: CalibrationOptions) -> dict[str, Any]:
     """Lowest concentration whose (1 - alpha) interval half-width is x / k (delta method)."""
     m = opts.readings_per_unknown
     k = opts.loq_relative_k
-    t = float(stats.t.ppf(1 - opts.alpha / 2, cal.df))
+    t = t_ppf(1 - opts.alpha / 2, cal.df)
     x_hi = cal.x_fit_range[1]
-    grid = np.geomspace(x_hi * 1e-6, x_hi, 400)
+    grid = np.geomspace(x_hi * 1e-6, x_hi, 160)
     h = grid - k * t * _delta_se_at_conc(cal, grid, m)
     ok = np.flatnonzero(np.isfinite(h) & (h > 0))
     base = {"k": k, "alpha": opts.alpha, "m": m,
