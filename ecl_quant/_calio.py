@@ -74,7 +74,8 @@ def read_table(path: str | Path) -> pd.DataFrame:
     except InputFormatError:
         raise
     except pd.errors.EmptyDataError as err:
-        raise InputFormatError("the table is empty", path=p) from err
+        raise InputFormatError("the table is empty; export the readings as CSV with a "
+                               "header line, e.g. concentration,response", path=p) from err
     except (pd.errors.ParserError, UnicodeDecodeError, ValueError, OSError, ImportError) as err:
         raise InputFormatError(f"cannot read the table ({type(err).__name__}: {err})".splitlines()[0],
                                path=p) from err

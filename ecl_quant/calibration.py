@@ -1618,10 +1618,12 @@ def load_calibration(path: str | Path) -> Calibration:
     try:
         doc = json.loads(text)
     except json.JSONDecodeError as err:
-        raise InputFormatError(f"not valid JSON ({err.msg} at line {err.lineno})", path=p) from err
+        raise InputFormatError(f"not valid JSON ({err.msg} at line {err.lineno}); the file is "
+                               "damaged: refit with `ecl-quant calibrate`", path=p) from err
     if not isinstance(doc, dict) or doc.get("format") != FORMAT_NAME:
         raise CalibrationError(f"not an ecl_quant calibration file (format must be "
-                               f"{FORMAT_NAME!r})", path=p)
+                               f"{FORMAT_NAME!r}); give the calibration.json written by "
+                               "`ecl-quant calibrate`", path=p)
     version = doc.get("version")
     if not isinstance(version, int) or isinstance(version, bool):
         raise CalibrationError(f"format version {version!r} is not an integer", path=p)
