@@ -2018,7 +2018,8 @@ def load_profile(path: str | Path) -> DeviceProfile:
         raise InputFormatError(f"cannot read the device profile ({err.strerror})",
                                path=path) from err
     except (ValueError, UnicodeDecodeError) as err:
-        raise InputFormatError(f"the device profile is not valid JSON ({err})", path=path) from err
+        raise InputFormatError(f"the device profile is not valid JSON ({err}); make one with "
+                               "`ecl-quant camera --bracket`", path=path) from err
     try:
         jsonschema.validate(doc, _profile_schema())
     except jsonschema.ValidationError as err:
