@@ -434,7 +434,8 @@ def load_spots(path: str | Path) -> SpotSet:
         doc = json.loads(text)
     except json.JSONDecodeError as err:
         raise SpotError(f"spot file is not valid JSON (line {err.lineno}, column {err.colno}: "
-                        f"{err.msg})", path=path) from err
+                        f"{err.msg}); fix it, or leave out the spot file to detect the spots "
+                        "(measure writes them to spots.json)", path=path) from err
     spot_set = spots_from_dict(doc, path=path)
     return SpotSet(spot_set.spots, spot_set.frame_shape, spot_set.backgrounds,
                    {**spot_set.provenance, "file": str(path)})
