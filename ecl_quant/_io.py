@@ -103,7 +103,8 @@ def ensure_dir(path: str | Path) -> Path:
     try:
         path.mkdir(parents=True, exist_ok=True)
     except OSError as err:
-        raise OutputError(f"cannot create folder ({err.strerror})", path=path) from err
+        raise OutputError(f"cannot create folder ({err.strerror}); choose another --out "
+                          "folder or check its permissions", path=path) from err
     if not os.access(path, os.W_OK):
         raise OutputError("folder is not writable; choose another --out", path=path)
     return path
