@@ -581,8 +581,11 @@ class Recording:
     shape : (int, int)
         (H, W) of every frame, after rotation/orientation.
     metadata : dict
-        Codec, bit rate, rotation, time base, fps estimate, colour tags, the time
-        source ("exif", "fps", "pts", "index"), files; JSON-serialisable values.
+        JSON-serialisable description. Video: container, codec, profile, pix_fmt,
+        bit_rate, rotation, time_base, average_rate, guessed_rate, fps, n_frames,
+        duration_s, yuv_matrix, yuv_range, color_trc, chroma_step, bit_depth. Stills and
+        raw: format, n_files, bit_depth, fps, exposures_s, isos, orientation, make,
+        model (raw: white_level). Always time_source ("pts", "exif", "fps", "index").
     bit_depth : int
         Bits per code value (8, 16, 10, ... or the DNG's significant bits).
     files : tuple of str
