@@ -1,0 +1,866 @@
+"""``measure``: one recording -> per-spot curves and figures of merit, with provenance.
+
+The frame loop: at most two passes over the frames, one when the spots are given.
+
+1. Detection pass (only without spots): per frame, the drift shift (downscaled luma,
+   :class:`~ecl_quant.spots.DriftTracker`) and the linear frame minus the master dark
+   (or, without one, minus the first frame: the pre-emission frames stand in for the
+   dark) go into registered running max and sum projections; spots are then detected
+   on the max (or sum) projection.
+2. Integration pass: per frame only the spots' union crop (padded for drift) is
+   converted to float32 and linearised; :class:`~ecl_quant.curves.SpotIntegrator` turns
+   it into per-spot sums, backgrounds and saturated pixel counts.
+
+Afterwards the noise model is estimated from the recording (unless given), the
+per-frame net signal and its standard error are formed, and
+:func:`~ecl_quant.curves.curve_metrics` reduces each spot's curve. Nothing holds more
+than one frame at a time.
+
+Validity of integrals
+---------------------
+A spot with any saturated aperture pixel in any frame gets the ``saturated`` flag and
+**NaN** ``integral``, ``integral_se``, ``peak``, ``peak_se`` and ``snr`` (the clipped
+values are kept in ``integral_raw`` and ``peak_raw`` for inspection only).
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import math
+import platform
+import sys
+import time
+from collections.abc import Iterable
+from dataclasses import asdict, dataclass, field, replace
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+
+from ._io import atomic_write, ensure_dir, sha256_file
+from .curves import (
+    CurveMetrics,
+    CurveSettings,
+    NoiseModel,
+    SpotIntegrator,
+    curve_metrics,
+    estimate_noise_model,
+)
+from .errors import InputFormatError, OutputError, ShapeMismatchError, SpotError
+from .spots import (
+    DriftTracker,
+    ProjectionAccumulator,
+    SpotSet,
+    detect_spots,
+    drift_plane,
+    load_spots,
+    spots_to_dict,
+)
+
+__all__ = [
+    "SPOTS_COLUMNS",
+    "CURVES_COLUMNS",
+    "OUTPUT_FILES",
+    "MeasureSettings",
+    "MeasureResult",
+    "measure",
+    "write_measure_outputs",
+    "check_output_dir",
+    "summary_table",
+    "render_overlay",
+    "render_curves",
+]
+
+#: Columns of spots.csv, in order (the contract ones first).
+SPOTS_COLUMNS = (
+    "spot", "x_px", "y_px", "radius_px", "area_px", "background", "peak", "time_to_peak_s",
+    "onset_s", "fwhm_s", "time_above_s", "integral", "integral_se", "snr", "saturated_frames",
+    "flags", "label", "shape", "peak_se", "time_to_peak_se_s", "baseline", "baseline_sd",
+    "baseline_frames", "peak_raw", "integral_raw", "peak_snr", "noise_ratio",
+    "background_px", "annulus_inner_px", "annulus_outer_px")
+#: Columns of curves.csv.
+CURVES_COLUMNS = ("spot", "frame", "time_s", "signal", "signal_se", "background",
+                  "saturated_px", "shift_x_px", "shift_y_px")
+OUTPUT_FILES = ("spots.csv", "curves.csv", "spots.json", "run.json", "overlay.png", "curves.png")
+
+
+@dataclass(frozen=True)
+class MeasureSettings:
+    """Every option of :func:`measure` (recorded in run.json).
+
+    Attributes
+    ----------
+    channel : {"red", "green", "blue", "luma", "raw"}
+    transfer : str
+        ``auto``, ``srgb``, ``bt709``, ``linear``, ``gamma=G`` or ``profile=FILE``.
+    fps : float or None
+        Frame rate for stills without capture times.
+    detect : {"threshold", "log"}
+        Detection method (:func:`~ecl_quant.spots.detect_spots`).
+    detect_projection : {"max", "sum"}
+    detect_k_sigma, min_area_px, min_circularity : float
+    aperture_scale : float
+        Detected aperture radius = scale x half-maximum radius.
+    aperture_radius_px : float or None
+    uniform_radius : bool
+    annulus_inner, annulus_outer : float
+        Background annulus radii in multiples of each spot's radius (extent).
+    annulus_px : (float, float) or None
+        Absolute annulus radii in pixels instead.
+    annulus_min_px : int
+    background_clip_sigma : float
+    background_estimator : {"mean", "median"}
+        Level of the sigma-clipped annulus pixels: their mean (default; the median of
+        8-bit codes moves in whole code steps) or their median.
+    drift : bool
+        Register frames (hand-held recordings).
+    drift_target_px : int
+        Longest side of the downscaled frame used for drift.
+    max_shift_px : float
+        Shifts beyond this (from the reference) flag ``drifted``; the crop margin.
+    read_var : float or None
+        Per-pixel read variance, FS^2 (per frame); with ``gain``, replaces the estimate.
+    gain : float or None
+        Electrons per full scale.
+    saturation_level : float
+        Fraction of the encoded maximum counted as saturated.
+    per_exposure : bool
+        Divide by the exposure time when known (signal per second).
+    exposure_s : float or None
+        Exposure time for frames that do not carry one (video).
+    baseline_s : float or None
+        Length of the pre-emission baseline from the first frame; None: automatic.
+    onset_k_sigma : float
+    onset_min_frames : int
+    smooth_frames : int or None
+    min_snr : float
+    scale_se_to_baseline : bool
+        Multiply every standard error by the observed/model baseline noise ratio (median
+        over spots) when it exceeds 1: compression and spatially correlated noise make
+        the per-pixel model too small for sums.
+    max_pixels : int
+    """
+
+    channel: str = "red"
+    transfer: str = "auto"
+    fps: float | None = None
+    detect: Literal["threshold", "log"] = "threshold"
+    detect_projection: Literal["max", "sum"] = "max"
+    detect_k_sigma: float = 6.0
+    min_area_px: float = 9.0
+    min_circularity: float = 0.6
+    aperture_scale: float = 1.5
+    aperture_radius_px: float | None = None
+    uniform_radius: bool = True
+    annulus_inner: float = 1.2
+    annulus_outer: float = 2.0
+    annulus_px: tuple[float, float] | None = None
+    annulus_min_px: int = 20
+    background_clip_sigma: float = 3.0
+    background_estimator: Literal["mean", "median"] = "mean"
+    drift: bool = True
+    drift_target_px: int = 256
+    max_shift_px: float = 20.0
+    read_var: float | None = None
+    gain: float | None = None
+    saturation_level: float = 0.98
+    per_exposure: bool = True
+    exposure_s: float | None = None
+    baseline_s: float | None = None
+    onset_k_sigma: float = 4.0
+    onset_min_frames: int = 3
+    smooth_frames: int | None = None
+    min_snr: float = 3.0
+    scale_se_to_baseline: bool = True
+    max_pixels: int = 100_000_000
+
+    def __post_init__(self) -> None:
+        from .radiometry import CHANNELS
+        from .transfer import parse_transfer
+
+        if self.channel not in CHANNELS:
+            raise InputFormatError(f"unknown channel {self.channel!r}; use one of "
+                                   f"{', '.join(CHANNELS)}")
+        parse_transfer(self.transfer)
+        if self.detect not in ("threshold", "log"):
+            raise InputFormatError(f"unknown detection method {self.detect!r}; use threshold or log")
+        if self.detect_projection not in ("max", "sum"):
+            raise InputFormatError("detect_projection must be 'max' or 'sum'")
+        if (self.read_var is None) != (self.gain is None):
+            raise InputFormatError("give both read_var and gain for a noise model, or neither")
+        if self.gain is not None and not self.gain > 0:
+            raise InputFormatError(f"gain must be > 0 electrons per full scale, got {self.gain!r}")
+        if self.read_var is not None and not self.read_var >= 0:
+            raise InputFormatError(f"read_var must be >= 0, got {self.read_var!r}")
+        if self.annulus_px is not None:
+            a, b = self.annulus_px
+            if not 0 <= a < b:
+                raise InputFormatError(f"annulus_px must be (inner, outer) with 0 <= inner < outer")
+            object.__setattr__(self, "annulus_px", (float(a), float(b)))
+        elif not 0 < self.annulus_inner < self.annulus_outer:
+            raise InputFormatError("annulus radii must satisfy 0 < inner < outer")
+        for name in ("max_shift_px", "aperture_scale", "detect_k_sigma"):
+            if not getattr(self, name) > 0:
+                raise InputFormatError(f"{name} must be > 0")
+        if not 0 < self.saturation_level <= 1:
+            raise InputFormatError("saturation_level must be in (0, 1]")
+        for name in ("exposure_s", "fps", "baseline_s", "aperture_radius_px"):
+            v = getattr(self, name)
+            if v is not None and not v > 0:
+                raise InputFormatError(f"{name} must be > 0, got {v!r}")
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-friendly form."""
+        d = asdict(self)
+        if d["annulus_px"] is not None:
+            d["annulus_px"] = list(d["annulus_px"])
+        return d
+
+
+@dataclass(frozen=True, eq=False)
+class MeasureResult:
+    """Outcome of :func:`measure`.
+
+    Attributes
+    ----------
+    spots_table : DataFrame
+        One row per spot (:data:`SPOTS_COLUMNS`).
+    curves_table : DataFrame
+        Long table, one row per spot and frame (:data:`CURVES_COLUMNS`).
+    spot_set : SpotSet
+        The spots used (detected or given); reusable with ``spots=``.
+    projection_max : (H, W) ndarray of float32
+        Max projection (linear, dark corrected; NaN where not computed: with given spots
+        only the spots' crop is projected).
+    projection_sum : (H, W) ndarray of float32 or None
+    metrics : tuple of CurveMetrics
+    noise : NoiseModel or None
+    provenance : dict
+        Inputs (with SHA-256), settings, versions, timings, resolved transfer, noise
+        model, drift summary; the body of run.json.
+    """
+
+    spots_table: pd.DataFrame
+    curves_table: pd.DataFrame
+    spot_set: SpotSet
+    projection_max: NDArray[np.float32]
+    projection_sum: NDArray[np.float32] | None
+    metrics: tuple[CurveMetrics, ...]
+    noise: NoiseModel | None
+    provenance: dict[str, Any] = field(default_factory=dict)
+
+    def to_frame(self) -> pd.DataFrame:
+        """The spots table."""
+        return self.spots_table
+
+    @property
+    def valid(self) -> pd.Series:
+        """Per spot: True when the integral is valid (finite, not saturated)."""
+        return self.spots_table["integral"].notna()
+
+
+# ------------------------------------------------------------------ helpers
+
+
+def _versions() -> dict[str, str]:
+    from importlib import metadata
+
+    from . import __version__
+
+    out = {"ecl_quant": __version__, "python": platform.python_version()}
+    for dist in ("numpy", "scipy", "pandas", "opencv-python-headless", "opencv-python",
+                 "scikit-image", "av", "Pillow", "rawpy", "matplotlib"):
+        try:
+            out[dist] = metadata.version(dist)
+        except metadata.PackageNotFoundError:
+            continue
+    return out
+
+
+def _file_entries(paths: Iterable[str | Path]) -> list[dict[str, Any]]:
+    out = []
+    for p in paths:
+        p = Path(p)
+        if p.is_file():
+            out.append({"path": str(p), "bytes": p.stat().st_size, "sha256": sha256_file(p)})
+    return out
+
+
+def _dark_files(path: Path) -> list[Path]:
+    if path.is_dir():
+        return sorted(q for q in path.iterdir() if q.is_file() and not q.name.startswith("."))
+    return [path]
+
+
+def _progress(total: int | None, desc: str, enabled: bool) -> Any:
+    from tqdm import tqdm
+
+    return tqdm(total=total, desc=desc, unit="frame", file=sys.stderr, leave=False,
+                disable=(not enabled) or None, mininterval=0.5)
+
+
+def _open(source: Any, settings: MeasureSettings) -> Any:
+    from .frames import open_recording
+
+    if hasattr(source, "frames") and hasattr(source, "shape") and hasattr(source, "kind"):
+        return source
+    return open_recording(source, fps=settings.fps, max_pixels=settings.max_pixels)
+
+
+def _empty_tables() -> tuple[pd.DataFrame, pd.DataFrame]:
+    return pd.DataFrame(columns=list(SPOTS_COLUMNS)), pd.DataFrame(columns=list(CURVES_COLUMNS))
+
+
+# ------------------------------------------------------------------ measure
+
+
+def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
+            dark: Any = None, settings: MeasureSettings = MeasureSettings(),
+            progress: bool = False) -> MeasureResult:
+    """Measure every spot of one recording.
+
+    Parameters
+    ----------
+    source : str, Path, list of paths, or Recording
+        A video, a folder of stills, a list of images, a DNG, or an opened
+        :class:`~ecl_quant.frames.Recording`.
+    spots : str, Path or SpotSet, optional
+        A spot file (:func:`~ecl_quant.spots.load_spots`) or spots; None detects them.
+    dark : str, Path or MasterDark, optional
+        Dark frames (folder, image or video) or a master dark; same size, channel and
+        transfer as the recording.
+    settings : MeasureSettings
+    progress : bool
+        Progress bar on stderr (tqdm; only on a terminal).
+
+    Returns
+    -------
+    MeasureResult
+        With empty tables (and a :class:`~ecl_quant.errors.NoSpotsWarning`) when no spot
+        was detected.
+
+    Raises
+    ------
+    InputFormatError, ShapeMismatchError, SpotError
+        Unreadable input, a dark of another size, a malformed spot file or spots outside
+        the frame.
+    """
+    from .radiometry import (
+        MasterDark,
+        channel_values,
+        linearize,
+        load_dark,
+        saturation_mask,
+        transfer_choice,
+    )
+    from .transfer import parse_transfer
+
+    t_start = time.perf_counter()
+    started = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    rec = _open(source, settings)
+    shape = (int(rec.shape[0]), int(rec.shape[1]))
+    choice = transfer_choice(settings.transfer, rec)
+    spec = parse_transfer(choice["resolved"])
+    channel = settings.channel
+
+    spot_path: Path | None = None
+    spot_set: SpotSet | None
+    if spots is None:
+        spot_set = None
+    elif isinstance(spots, SpotSet):
+        spot_set = spots
+    else:
+        spot_path = Path(spots)
+        spot_set = load_spots(spot_path)
+    if spot_set is not None:
+        if spot_set.frame_shape is not None and tuple(spot_set.frame_shape) != shape:
+            raise SpotError(
+                f"the spots were defined on {spot_set.frame_shape[1]}x{spot_set.frame_shape[0]} "
+                f"frames but the recording is {shape[1]}x{shape[0]}; use spots made on this "
+                "recording's size", path=spot_path)
+        if len(spot_set) == 0:
+            raise SpotError("the spot file holds no spots", path=spot_path)
+        spot_set.check_fits(shape, path=spot_path)
+
+    dark_path: Path | None = None
+    master: MasterDark | None
+    if dark is None:
+        master = None
+    elif isinstance(dark, MasterDark):
+        master = dark
+    else:
+        dark_path = Path(dark)
+        master = load_dark(dark_path, channel=channel, transfer=spec, shape=shape)
+    if master is not None and master.shape != shape:
+        raise ShapeMismatchError(
+            f"dark frame is {master.shape[1]}x{master.shape[0]} but the recording is "
+            f"{shape[1]}x{shape[0]}; record darks at the same resolution", path=dark_path)
+
+    def linear(frame: Any, region: tuple[slice, slice] | None) -> NDArray[np.float32]:
+        lin = linearize(channel_values(frame, channel, region=region), spec, channel=channel)
+        if master is not None:
+            lin -= master.level if region is None else master.level[region]
+        return lin
+
+    def new_tracker() -> DriftTracker | None:
+        return DriftTracker(shape, target_px=settings.drift_target_px) if settings.drift else None
+
+    timings: dict[str, float] = {}
+    shifts: list[tuple[float, float, float, bool]] = []
+    projection_sum: NDArray[np.float32] | None = None
+    detection_info: dict[str, Any] = {}
+
+    # ---------------------------------------------------------- pass 1: detection
+    if spot_set is None:
+        t1 = time.perf_counter()
+        tracker = new_tracker()
+        acc = ProjectionAccumulator(shape)
+        base: NDArray[np.float32] | None = None
+        with _progress(rec.n_frames, "detect", progress) as bar:
+            for frame in rec.frames():
+                if tracker is not None:
+                    shifts.append(tracker.update(drift_plane(frame, channel)))
+                else:
+                    shifts.append((0.0, 0.0, 0.0, False))
+                lin = linear(frame, None)
+                if master is None:
+                    if base is None:
+                        base = lin.copy()
+                    lin -= base
+                dx, dy = shifts[-1][0], shifts[-1][1]
+                acc.add(lin, (int(round(dx)), int(round(dy))))
+                bar.update(1)
+        if acc.n_frames == 0:
+            raise InputFormatError("the recording holds no frames", path=rec.path)
+        projection_max = acc.max
+        projection_sum = acc.sum
+        proj = projection_max if settings.detect_projection == "max" else projection_sum
+        spot_set = detect_spots(
+            proj, method=settings.detect, min_area_px=settings.min_area_px,
+            min_circularity=settings.min_circularity, k_sigma=settings.detect_k_sigma,
+            aperture_scale=settings.aperture_scale, aperture_radius_px=settings.aperture_radius_px,
+            uniform_radius=settings.uniform_radius)
+        detection_info = {"projection": settings.detect_projection,
+                          "projection_dark": "master dark" if master is not None else
+                          "first frame (no dark given)", **dict(spot_set.provenance)}
+        spot_set = SpotSet(spot_set.spots, shape, spot_set.backgrounds,
+                           {"detected_from": str(rec.path), "method": settings.detect,
+                            "projection": settings.detect_projection})
+        timings["detect_pass_s"] = time.perf_counter() - t1
+        if len(spot_set) == 0:
+            tables = _empty_tables()
+            prov = _provenance(rec, settings, choice, spot_path, dark_path, master, None,
+                               detection_info, {}, timings, started, t_start, acc.n_frames, 0)
+            return MeasureResult(tables[0], tables[1], spot_set, projection_max, projection_sum,
+                                 (), None, prov)
+    else:
+        projection_max = np.full(shape, np.nan, np.float32)
+
+    # ---------------------------------------------------------- pass 2: integration
+    t2 = time.perf_counter()
+    integ = SpotIntegrator(spot_set, shape, annulus_inner=settings.annulus_inner,
+                           annulus_outer=settings.annulus_outer, annulus_px=settings.annulus_px,
+                           annulus_min_px=settings.annulus_min_px,
+                           pad_px=int(math.ceil(settings.max_shift_px)) + 1,
+                           clip_sigma=settings.background_clip_sigma,
+                           estimator=settings.background_estimator)
+    region = integ.region
+    tracker = new_tracker() if not shifts else None
+    crop_acc = ProjectionAccumulator(integ.geometry.shape) if detection_info == {} else None
+    exposures: list[float | None] = []
+    clipped_any = False
+    n_pass1 = len(shifts)
+    index = 0
+    with _progress(rec.n_frames, "measure", progress) as bar:
+        for frame in rec.frames():
+            if n_pass1:
+                if index >= n_pass1:
+                    raise InputFormatError("the recording yielded more frames on the second "
+                                           "pass than on the first; is it still being written?",
+                                           path=rec.path)
+                sh = shifts[index]
+            elif tracker is not None:
+                sh = tracker.update(drift_plane(frame, channel))
+                shifts.append(sh)
+            else:
+                sh = (0.0, 0.0, 0.0, False)
+                shifts.append(sh)
+            lin = linear(frame, region)
+            sat = saturation_mask(frame, channel, region=region, level=settings.saturation_level)
+            integ.add(lin, time_s=frame.time_s, shift_px=(sh[0], sh[1]), saturated_crop=sat)
+            clipped_any |= integ.clip_shift(sh[0], sh[1])[2]
+            if crop_acc is not None:
+                crop_acc.add(lin, (int(round(sh[0])), int(round(sh[1]))))
+            exposures.append(frame.exposure_s)
+            index += 1
+            bar.update(1)
+    if index == 0:
+        raise InputFormatError("the recording holds no frames", path=rec.path)
+    if n_pass1 and index != n_pass1:
+        raise InputFormatError(f"the recording yielded {index} frames on the second pass but "
+                               f"{n_pass1} on the first", path=rec.path)
+    if crop_acc is not None:
+        projection_max[region] = crop_acc.max
+    timings["integrate_pass_s"] = time.perf_counter() - t2
+
+    # ---------------------------------------------------------- noise, signals, metrics
+    if settings.read_var is not None and settings.gain is not None:
+        noise = NoiseModel(float(settings.read_var), float(settings.gain), "given", 0)
+    else:
+        noise = estimate_noise_model(*integ.noise_observations())
+    exp = np.array([e if e is not None else (settings.exposure_s or math.nan) for e in exposures])
+    per_second = settings.per_exposure and bool(np.isfinite(exp).all())
+    scale = 1.0 / exp if per_second else None
+    sig = integ.signals(noise, scale=scale)
+    t = integ.raw_arrays()["time_s"]
+    shift_arr = integ.raw_arrays()["shift"]
+    known = exp[np.isfinite(exp)]
+    exposure_changed = known.size > 1 and float(known.max() - known.min()) > 0.01 * float(known.min())
+    shift_mag = np.hypot(shift_arr[:, 0], shift_arr[:, 1])
+    drifted = bool(clipped_any or (shift_mag > settings.max_shift_px).any())
+
+    curve_set = CurveSettings(
+        baseline_end_s=(None if settings.baseline_s is None else float(t[0] + settings.baseline_s)),
+        onset_k_sigma=settings.onset_k_sigma, onset_min_frames=settings.onset_min_frames,
+        smooth_frames=settings.smooth_frames, min_snr=settings.min_snr)
+    n = len(spot_set)
+
+    def all_metrics(cs: CurveSettings) -> list[CurveMetrics]:
+        return [curve_metrics(t, sig["signal"][:, k], sig["signal_se"][:, k],
+                              saturated_px=sig["saturated_px"][:, k], settings=cs) for k in range(n)]
+
+    metrics = all_metrics(curve_set)
+    baseline_rule = "given" if settings.baseline_s is not None else "per spot (first 5 %)"
+    if settings.baseline_s is None:
+        # One baseline window for every spot: the frames before the earliest onset
+        # (one frame of guard), so that blanks and standards share it.
+        onsets = [m.onset_s for m in metrics if math.isfinite(m.onset_s)]
+        if onsets:
+            before = np.flatnonzero(t < min(onsets))
+            if before.size >= 4:
+                end = float(t[before[-2]])
+                curve_set = replace(curve_set, baseline_end_s=end)
+                metrics = all_metrics(curve_set)
+                baseline_rule = f"common: frames up to {end:.6g} s (before the earliest onset)"
+    # Compressed or spatially correlated noise: when the baseline scatter exceeds the
+    # model SE (median ratio over spots, >= 8 baseline frames), scale every SE by it.
+    se_scale = 1.0
+    ratios = [m.noise_ratio for m in metrics if math.isfinite(m.noise_ratio)]
+    if settings.scale_se_to_baseline and ratios and min(m.baseline_frames for m in metrics) >= 8:
+        se_scale = max(1.0, float(np.median(ratios)))
+        if se_scale > 1.0:
+            sig["signal_se"] = sig["signal_se"] * se_scale
+            sig["background_se"] = sig["background_se"] * se_scale
+            metrics = [replace(m2, noise_ratio=m.noise_ratio) for m, m2 in
+                       zip(metrics, all_metrics(curve_set))]
+    extra_flags = (["drifted"] if drifted else []) + (["exposure_changed"] if exposure_changed else [])
+    if extra_flags:
+        metrics = [replace(m, flags=tuple(m.flags) + tuple(extra_flags)) for m in metrics]
+
+    # ---------------------------------------------------------- tables
+    g = integ.geometry
+    bg_med = np.nanmedian(sig["background"], axis=0)
+    rows = []
+    for k, (s, m) in enumerate(zip(spot_set.spots, metrics)):
+        md = m.to_dict()
+        rows.append({
+            "spot": s.number, "x_px": s.x_px, "y_px": s.y_px, "radius_px": s.radius_px,
+            "area_px": float(g.area[k]), "background": float(bg_med[k]),
+            **{c: md[c] for c in ("peak", "time_to_peak_s", "onset_s", "fwhm_s", "time_above_s",
+                                  "integral", "integral_se", "snr", "saturated_frames", "flags",
+                                  "peak_se", "time_to_peak_se_s", "baseline", "baseline_sd",
+                                  "baseline_frames", "peak_raw", "integral_raw", "peak_snr",
+                                  "noise_ratio")},
+            "label": s.label, "shape": s.shape, "background_px": int(g.bg_n[k]),
+            "annulus_inner_px": g.annulus_px[k][0], "annulus_outer_px": g.annulus_px[k][1]})
+    spots_table = pd.DataFrame(rows, columns=list(SPOTS_COLUMNS))
+    n_frames = t.size
+    curves_table = pd.DataFrame({
+        "spot": np.repeat([s.number for s in spot_set.spots], n_frames),
+        "frame": np.tile(np.arange(n_frames), n),
+        "time_s": np.tile(t, n),
+        "signal": sig["signal"].T.ravel(),
+        "signal_se": sig["signal_se"].T.ravel(),
+        "background": sig["background"].T.ravel(),
+        "saturated_px": sig["saturated_px"].T.ravel(),
+        "shift_x_px": np.tile(shift_arr[:, 0], n),
+        "shift_y_px": np.tile(shift_arr[:, 1], n),
+    }, columns=list(CURVES_COLUMNS))
+    measured = [s for s in shifts if s[3]]
+    drift_info = {
+        "enabled": settings.drift, "frames_measured": len(measured),
+        "max_shift_px": float(shift_mag.max()) if shift_mag.size else 0.0,
+        "limit_px": settings.max_shift_px, "clipped": bool(clipped_any), "drifted": drifted,
+        "method": "phase correlation (cv2.phaseCorrelate) on the luma/channel plane box-"
+                  "downscaled to <= %d px, sub-pixel refined; masks moved by whole pixels"
+                  % settings.drift_target_px if settings.drift else "off"}
+    analysis = {
+        "noise_model": noise.to_dict(), "baseline": baseline_rule,
+        "se_scale": se_scale,
+        "se_scale_rule": "signal_se multiplied by the median over spots of (baseline SD / "
+                         "model SE) when that exceeds 1 and every spot has >= 8 baseline frames"
+                         if settings.scale_se_to_baseline else "off",
+        "signal_unit": "linear full-scale units per second (FS/s), summed over the aperture"
+        if per_second else "linear full-scale units (FS) per frame, summed over the aperture",
+        "integral_unit": "FS" if per_second else "FS x s",
+        "per_exposure": per_second, "exposure_changed": bool(exposure_changed),
+        "drift": drift_info, "crop": [region[0].start, region[0].stop, region[1].start,
+                                      region[1].stop],
+        "saturated_integral_rule": "NaN integral, integral_se, peak, peak_se and snr; flag "
+                                   "'saturated'; raw values in integral_raw/peak_raw",
+    }
+    timings["total_s"] = time.perf_counter() - t_start
+    prov = _provenance(rec, settings, choice, spot_path, dark_path, master, noise,
+                       detection_info, analysis, timings, started, t_start, n_frames, n)
+    return MeasureResult(spots_table, curves_table, spot_set, projection_max, projection_sum,
+                         tuple(metrics), noise, prov)
+
+
+def _provenance(rec: Any, settings: MeasureSettings, choice: dict[str, str],
+                spot_path: Path | None, dark_path: Path | None, master: Any,
+                noise: NoiseModel | None, detection: dict[str, Any], analysis: dict[str, Any],
+                timings: dict[str, float], started: str, t_start: float, n_frames: int,
+                n_spots: int) -> dict[str, Any]:
+    files = list(getattr(rec, "files", ()) or [rec.path])
+    inputs: dict[str, Any] = {
+        "recording": {"path": str(rec.path), "kind": rec.kind, "shape": list(rec.shape),
+                      "n_frames": n_frames, "files": _file_entries(files),
+                      "metadata": _jsonable(dict(rec.metadata))}}
+    if dark_path is not None:
+        inputs["dark"] = {"path": str(dark_path), "files": _file_entries(_dark_files(dark_path)),
+                          "n_frames": master.n_frames, "method": master.method}
+    elif master is not None:
+        inputs["dark"] = {"path": None, "n_frames": master.n_frames, "method": master.method,
+                          "provenance": _jsonable(dict(master.provenance))}
+    if spot_path is not None:
+        inputs["spots"] = _file_entries([spot_path])[0] if spot_path.is_file() else str(spot_path)
+    frames_total = float(timings.get("total_s", time.perf_counter() - t_start))
+    return {
+        "tool": "ecl-quant measure",
+        "started_utc": started,
+        "inputs": inputs,
+        "settings": settings.to_dict(),
+        "transfer": choice,
+        "spots_source": "file" if spot_path is not None else
+                        ("given" if not detection else "detected"),
+        "n_spots": n_spots,
+        "detection": _jsonable(detection),
+        "analysis": _jsonable(analysis),
+        "versions": _versions(),
+        "timings": {**{k: round(v, 4) for k, v in timings.items()},
+                    "frames_per_s": round(n_frames * max(1, 1 + bool(detection)) / frames_total, 2)
+                    if frames_total > 0 else None},
+        "cautions": "Research measurement, not a certified analytical method.",
+    }
+
+
+def _jsonable(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    if isinstance(obj, (str, int, float, bool)) or obj is None:
+        return obj
+    return str(obj)
+
+
+# ------------------------------------------------------------------ outputs
+
+
+def check_output_dir(out_dir: str | Path, *, force: bool = False) -> Path:
+    """Refuse an existing non-empty folder unless ``force``; a file is always refused.
+
+    Raises
+    ------
+    OutputError
+    """
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise OutputError("exists and is not a folder; choose another --out", path=out)
+    if out.is_dir() and any(p for p in out.iterdir() if not p.name.startswith(".")) and not force:
+        raise OutputError("folder is not empty; pass --force to overwrite its files or "
+                          "choose another --out", path=out)
+    return out
+
+
+def _stretch(img: NDArray[np.floating]) -> NDArray[np.float64]:
+    a = np.asarray(img, dtype=np.float64)
+    finite = np.isfinite(a)
+    if not finite.any():
+        return np.zeros_like(a)
+    lo, hi = np.percentile(a[finite], [1.0, 99.9])
+    if hi <= lo:
+        hi = lo + 1.0
+    x = np.clip((np.where(finite, a, lo) - lo) / (hi - lo), 0.0, 1.0)
+    return np.arcsinh(10.0 * x) / np.arcsinh(10.0)
+
+
+def render_overlay(result: MeasureResult, *, dpi: int = 100) -> bytes:
+    """PNG of the max projection with numbered spot outlines and background annuli."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+    from matplotlib.patches import Circle, Polygon, Rectangle
+
+    img = result.projection_max
+    h, w = img.shape
+    width_in = 9.0
+    fig = Figure(figsize=(width_in, max(2.5, width_in * h / w)), dpi=dpi)
+    FigureCanvasAgg(fig)
+    ax = fig.add_axes((0.0, 0.0, 1.0, 1.0))
+    ax.imshow(_stretch(img), cmap="gray", interpolation="nearest", vmin=0, vmax=1)
+    tab = result.spots_table.set_index("spot") if len(result.spots_table) else None
+    for s in result.spot_set.spots:
+        bad = tab is not None and isinstance(tab.loc[s.number, "flags"], str) and \
+            "saturated" in tab.loc[s.number, "flags"]
+        colour = "#ff5050" if bad else "#40d0ff"
+        if s.shape == "circle":
+            ax.add_patch(Circle((s.params[0], s.params[1]), s.params[2], fill=False,
+                                edgecolor=colour, linewidth=1.2))
+        elif s.shape == "rect":
+            x0, y0, x1, y1 = s.params
+            ax.add_patch(Rectangle((x0, y0), x1 - x0, y1 - y0, fill=False, edgecolor=colour,
+                                   linewidth=1.2))
+        else:
+            ax.add_patch(Polygon(np.asarray(s.params).reshape(-1, 2), closed=True, fill=False,
+                                 edgecolor=colour, linewidth=1.2))
+        if tab is not None:
+            r_in, r_out = tab.loc[s.number, "annulus_inner_px"], tab.loc[s.number, "annulus_outer_px"]
+            if np.isfinite(r_in) and np.isfinite(r_out):
+                for r in (r_in, r_out):
+                    ax.add_patch(Circle((s.x_px, s.y_px), r, fill=False, edgecolor="#ffd040",
+                                        linewidth=0.7, linestyle="--"))
+        ax.text(s.x_px, s.y_px - s.radius_px - 2, str(s.number), color=colour, ha="center",
+                va="bottom", fontsize=9, fontweight="bold")
+    for b in result.spot_set.backgrounds:
+        if b.shape == "rect":
+            x0, y0, x1, y1 = b.params
+            ax.add_patch(Rectangle((x0, y0), x1 - x0, y1 - y0, fill=False, edgecolor="#ffd040",
+                                   linestyle="--"))
+        elif b.shape == "circle":
+            ax.add_patch(Circle(b.params[:2], b.params[2], fill=False, edgecolor="#ffd040",
+                                linestyle="--"))
+        else:
+            ax.add_patch(Polygon(np.asarray(b.params).reshape(-1, 2), closed=True, fill=False,
+                                 edgecolor="#ffd040", linestyle="--"))
+    ax.set_xlim(-0.5, w - 0.5)
+    ax.set_ylim(h - 0.5, -0.5)
+    ax.set_axis_off()
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi)
+    return buf.getvalue()
+
+
+def render_curves(result: MeasureResult, *, dpi: int = 100) -> bytes:
+    """PNG of every spot's net signal against time, onset (dot) and FWHM (bar) marked."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(9.0, 5.0), dpi=dpi)
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot(1, 1, 1)
+    cur = result.curves_table
+    unit = result.provenance.get("analysis", {}).get("signal_unit", "")
+    for s, m in zip(result.spot_set.spots, result.metrics):
+        d = cur[cur["spot"] == s.number]
+        line, = ax.plot(d["time_s"], d["signal"], linewidth=1.0, label=f"{s.number}")
+        c = line.get_color()
+        if math.isfinite(m.onset_s):
+            y_on = np.interp(m.onset_s, d["time_s"], d["signal"])
+            ax.plot([m.onset_s], [y_on], "o", color=c, markersize=4)
+        if math.isfinite(m.fwhm_s):
+            half = m.baseline + 0.5 * m.peak_raw
+            ax.plot([m.fwhm_left_s, m.fwhm_right_s], [half, half], "-", color=c, linewidth=2.5,
+                    alpha=0.6)
+    ax.set_xlabel("time (s)")
+    ax.set_ylabel("net spot signal" + (f"\n({unit.split(',')[0]})" if unit else ""))
+    ax.axhline(0.0, color="0.6", linewidth=0.6)
+    if result.spot_set.spots:
+        ax.legend(title="spot", fontsize=7, ncol=2, loc="upper right")
+    ax.set_title("dots: onset; bars: full width at half maximum", fontsize=9)
+    fig.tight_layout()
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi)
+    return buf.getvalue()
+
+
+def write_measure_outputs(result: MeasureResult, out_dir: str | Path, *,
+                          force: bool = False) -> list[Path]:
+    """Write spots.csv, curves.csv, spots.json, run.json, overlay.png and curves.png.
+
+    Every file is rendered in memory first and then written atomically (temporary file
+    + rename), so a failure never leaves a half-written file in ``out_dir``.
+
+    Parameters
+    ----------
+    result : MeasureResult
+    out_dir : str or Path
+        Created when missing; an existing non-empty folder needs ``force``.
+    force : bool
+
+    Returns
+    -------
+    list of Path
+        The files written.
+
+    Raises
+    ------
+    OutputError
+        Existing non-empty folder without ``force``, or the folder cannot be written.
+    """
+    out = check_output_dir(out_dir, force=force)
+    contents: dict[str, bytes] = {
+        "spots.csv": result.spots_table.to_csv(index=False, float_format="%.9g").encode(),
+        "curves.csv": result.curves_table.to_csv(index=False, float_format="%.9g").encode(),
+        "spots.json": (json.dumps(spots_to_dict(result.spot_set), indent=2) + "\n").encode(),
+        "overlay.png": render_overlay(result),
+        "curves.png": render_curves(result),
+    }
+    run = dict(result.provenance)
+    run["outputs"] = list(OUTPUT_FILES)
+    run["written_utc"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    contents["run.json"] = (json.dumps(_jsonable(run), indent=2) + "\n").encode()
+    ensure_dir(out)
+    written = []
+    for name in OUTPUT_FILES:
+        with atomic_write(out / name, "wb") as fh:
+            fh.write(contents[name])
+        written.append(out / name)
+    return written
+
+
+def summary_table(result: MeasureResult) -> str:
+    """A short fixed-width table (spot, x, y, peak, time to peak, integral, SE, flags)."""
+    t = result.spots_table
+    if t.empty:
+        return "no spots"
+    cols = [("spot", "{:d}"), ("x_px", "{:.1f}"), ("y_px", "{:.1f}"), ("peak", "{:.4g}"),
+            ("time_to_peak_s", "{:.3f}"), ("integral", "{:.4g}"), ("integral_se", "{:.2g}"),
+            ("snr", "{:.1f}"), ("flags", "{}")]
+    header = ["spot", "x", "y", "peak", "t_peak_s", "integral", "se", "snr", "flags"]
+    body = []
+    for _, r in t.iterrows():
+        cells = []
+        for (c, f), _h in zip(cols, header):
+            v = r[c]
+            if c == "spot":
+                cells.append(str(int(v)))
+            elif c == "flags":
+                cells.append(str(v) if isinstance(v, str) and v else "-")
+            else:
+                cells.append("nan" if v is None or not np.isfinite(float(v)) else f.format(float(v)))
+        body.append(cells)
+    widths = [max(len(h), *(len(b[i]) for b in body)) for i, h in enumerate(header)]
+    lines = ["  ".join(h.rjust(w) for h, w in zip(header, widths))]
+    lines += ["  ".join(c.rjust(w) for c, w in zip(b, widths)) for b in body]
+    return "\n".join(lines)
+
