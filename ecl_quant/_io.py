@@ -17,7 +17,8 @@ from typing import IO, Any
 
 from .errors import OutputError
 
-__all__ = ["atomic_write", "write_text_atomic", "write_json_atomic", "sha256_file", "ensure_dir"]
+__all__ = ["atomic_write", "write_text_atomic", "write_json_atomic", "sha256_file", "ensure_dir",
+           "check_overwrite"]
 
 
 @contextlib.contextmanager
@@ -108,3 +109,26 @@ def ensure_dir(path: str | Path) -> Path:
     if not os.access(path, os.W_OK):
         raise OutputError("folder is not writable; choose another --out", path=path)
     return path
+
+
+def check_overwrite(paths: Any, *, force: bool) -> None:
+    """Refuse to replace an existing output unless ``force`` (the CLI's ``--force``).
+
+    Parameters
+    ----------
+    paths : iterable of str or Path
+        The files a command is about to write.
+    force : bool
+        Replace them anyway.
+
+    Raises
+    ------
+    OutputError
+        For the first of ``paths`` that exists.
+    """
+    if force:
+        return
+    for p in paths:
+        if Path(p).exists():
+            raise OutputError("exists already; pass --force to replace it, or choose another "
+                              "--out", path=p)

@@ -75,12 +75,17 @@ def _add_camera(sub: argparse._SubParsersAction) -> None:
                    "file-name order, e.g. 1/250,1/125,1/60 (default: EXIF ExposureTime)")
     p.add_argument("--method", choices=["debevec", "robertson"], default="debevec",
                    help="response recovery method (default debevec)")
+    p.add_argument("--force", action="store_true",
+                   help="replace existing outputs (camera.json and plots, or the profile)")
     _common(p)
     p.set_defaults(run=_run_camera)
 
 
 def _run_camera(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
     from . import camera
+    from ._io import check_overwrite
     from .errors import InputFormatError
 
     say = (lambda *a: None) if args.quiet else print
@@ -89,6 +94,7 @@ def _run_camera(args: argparse.Namespace) -> int:
             raise InputFormatError("give either FOLDER (photon transfer) or --bracket, not both")
         if not args.profile:
             raise InputFormatError("--bracket needs --profile OUT.json (where to save it)")
+        check_overwrite([args.profile], force=args.force)
         images, times, files, (make, model) = camera.read_bracket(args.bracket,
                                                                   exposures=args.exposures)
         try:
@@ -114,6 +120,8 @@ def _run_camera(args: argparse.Namespace) -> int:
         roi = (x, y, w, h)
     if args.eta is not None and not 0 < args.eta <= 1:
         raise InputFormatError(f"--eta {args.eta:g} must be a quantum efficiency in (0, 1]")
+    check_overwrite([Path(args.out) / name for name in
+                     ("camera.json", "ptc.png", "linearity.png", "snr.png")], force=args.force)
     settings = camera.PhotonTransferSettings(eta=args.eta, highpass=args.highpass)
     result = camera.measure_photon_transfer(args.folder, dark=args.dark, channel=args.channel,
                                             roi=roi, max_code=args.max_code, settings=settings)
@@ -254,6 +262,8 @@ def _add_calibrate(sub: argparse._SubParsersAction) -> None:
                    help="calibration file to write; the plot goes beside it as .png "
                    "(default: calibration.json)")
     p.add_argument("--no-plot", action="store_true", help="do not write calibration.png")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing --out file (and its .png)")
     _common(p)
     p.set_defaults(run=_run_calibrate)
 
@@ -261,10 +271,12 @@ def _add_calibrate(sub: argparse._SubParsersAction) -> None:
 def _run_calibrate(args: argparse.Namespace) -> int:
     from pathlib import Path
 
-    from ._io import atomic_write, ensure_dir
+    from ._io import atomic_write, check_overwrite, ensure_dir
     from .calibration import (CalibrationOptions, calibrate_table, plot_calibration,
                               read_table, save_calibration)
 
+    planned = [Path(args.out)] + ([] if args.no_plot else [Path(args.out).with_suffix(".png")])
+    check_overwrite(planned, force=args.force)
     df = read_table(args.table)
     try:
         opts = CalibrationOptions(lod_method=args.lod_method, readings_per_unknown=args.readings)
