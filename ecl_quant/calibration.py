@@ -273,7 +273,8 @@ class Calibration:
     x, y : (N,) ndarray
         Every reading given (standards and blanks), in input order.
     w : (N,) ndarray
-        Weight of each fitted reading (NaN where not fitted).
+        Weight of each fitted reading in fit space (NaN where not fitted; for the power
+        law the linear-space weight times response^2).
     role : (N,) ndarray of str
         ``standard`` or ``blank``.
     in_fit : (N,) ndarray of bool
@@ -1479,10 +1480,16 @@ def calibrate_table(df: pd.DataFrame, *, x: str = "concentration", y: str = "res
             "level": level, "units": units, "response_units": response_units,
             "table": None if path is None else str(path),
             "options": dataclasses.asdict(options or CalibrationOptions())}
-    cal = _calibrate(xv[use], yv[use], np.where(is_blank[use], "blank", "standard").astype(str),
-                     sev[use], model=model, weights=weights, level=level, units=units,
-                     response_units=response_units, options=options, path=path,
-                     function="calibrate_table", arguments=args)
+    try:
+        cal = _calibrate(xv[use], yv[use],
+                         np.where(is_blank[use], "blank", "standard").astype(str), sev[use],
+                         model=model, weights=weights, level=level, units=units,
+                         response_units=response_units, options=options, path=path,
+                         function="calibrate_table", arguments=args)
+    except CalibrationError as err:
+        if err.path is None and path is not None:
+            raise CalibrationError(err.reason, path=path) from err
+        raise
     n_unknown = int((~use).sum())
     if n_unknown:
         cal = dataclasses.replace(cal, notes=cal.notes + (
@@ -1541,8 +1548,13 @@ def quantify_table(df: pd.DataFrame, cal: Calibration, *, y: str = "response",
         s = None if sev is None else sev[idx]
         ses.append(s if s is not None and np.all(np.isfinite(s)) else None)
         roles.append(str(df[role].iloc[idx[0]]) if role in df.columns else None)
-    preds = cal._predict_groups(groups, ses, method=method, level=lvl, weight=None,
-                                n_draws=n_draws, seed=seed)
+    try:
+        preds = cal._predict_groups(groups, ses, method=method, level=lvl, weight=None,
+                                    n_draws=n_draws, seed=seed)
+    except CalibrationError as err:
+        if err.path is None and path is not None:
+            raise CalibrationError(err.reason, path=path) from err
+        raise
     rows = []
     for k, grp, rl, pr in zip(order, groups, roles, preds):
         row: dict[str, Any] = {"sample": k}
