@@ -1181,9 +1181,9 @@ def _lowest_positive(cal: Calibration) -> float:
 def _limits(cal: Calibration, blank_y: FloatArray, opts: CalibrationOptions) -> tuple[dict[str, Any], list[str]]:
     """Every LOD/LOQ estimate the data allow, and the primary one (``method``)."""
     notes: list[str] = []
-    x_lo = cal.x_fit_range[0]
-    direction = float(np.sign(cal.slope_at(max(x_lo, _lowest_positive(cal) if cal._mdef.log_space else x_lo))))
-    direction = direction if direction != 0 else 1.0
+    x_lo, x_hi = cal.x_fit_range
+    # rising or falling calibration: thresholds lie above or below the blank
+    direction = 1.0 if float(cal.predict(x_hi)) >= float(cal.predict(x_lo)) else -1.0
     out: dict[str, Any] = {}
     # IUPAC, from blanks
     nb = int(blank_y.size)
