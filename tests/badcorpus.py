@@ -458,6 +458,16 @@ def _save_cal_probe(target: Path, folder: Path) -> str:
     return "written"
 
 
+def _subcommand_probe(argv: Callable[[Path, Path], list[str]]) -> Callable[[Path, Path], str]:
+    """Run a CLI subcommand's handler directly, so its exception is seen as raised."""
+    def probe(target: Path, folder: Path) -> str:
+        from ecl_quant.cli import build_parser
+
+        args = build_parser().parse_args(argv(target, folder))
+        return f"exit code {args.run(args)}"
+    return probe
+
+
 # ---------------------------------------------------------------- CLI argument builders
 
 
@@ -718,6 +728,15 @@ def _disk_full_target(folder: Path) -> Path:
     return p
 
 
+def _existing_calibration(folder: Path) -> Path:
+    (folder / "calibration.json").write_text('{"fitted": "last week"}\n', encoding="utf-8")
+    return _table("concentration,response\n0,0.01\n1,0.5\n2,1.02\n4,1.98\n")(folder)
+
+
+def _cli_calibrate_over(target: Path, folder: Path) -> list[str]:
+    return ["calibrate", str(target), "--out", str(folder / "calibration.json"), "--quiet"]
+
+
 def _disk_full_batch(folder: Path) -> Path:
     return good_manifest(folder / "data")
 
@@ -885,6 +904,10 @@ CASES: tuple[BadCase, ...] = (
     BadCase("output-not-empty", "outputs", "batch --out a folder holding other files, "
             "without --force", _existing_out, _batch_probe("results"), OutputError,
             _cli_batch("results"), keep=("results/summary.xlsx",), names="results"),
+    BadCase("output-file-exists", "outputs", "calibrate --out naming an existing "
+            "calibration.json, without --force", _existing_calibration,
+            _subcommand_probe(_cli_calibrate_over), OutputError, _cli_calibrate_over,
+            keep=("calibration.json",), names="calibration.json"),
     BadCase("output-is-a-file", "outputs", "batch --out naming an existing file",
             _out_is_file, _batch_probe("results"), OutputError, _cli_batch("results"),
             keep=("results",), names="results"),
