@@ -369,6 +369,77 @@ def _run_quantify(args: argparse.Namespace) -> int:
     return 0
 
 
+@_command
+def _add_measure(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "measure", help="measure the spots of one recording (curves, peak, integral)",
+        description="ecl-quant measure INPUT: find (or read) the spots of one recording "
+        "(a video, a folder of stills, an image or a DNG), integrate each spot's linear light "
+        "frame by frame with a local background, and report peak, time to peak, onset, "
+        "duration and integrated emission with standard errors. Writes spots.csv, "
+        "curves.csv, spots.json (reusable with --spots), run.json, overlay.png and "
+        "curves.png into --out.")
+    p.add_argument("input", help="video file, folder of stills, image or DNG")
+    p.add_argument("--dark", metavar="PATH", default=None,
+                   help="dark frames (folder, image or video) at the same size and exposure")
+    p.add_argument("--spots", metavar="FILE", default=None,
+                   help="spot file (JSON: circles, rects, polygons); default: detect")
+    p.add_argument("--channel", default="red", choices=["red", "green", "blue", "luma", "raw"],
+                   help="colour channel (default: red, for Ru(bpy)3 2+ emission)")
+    p.add_argument("--transfer", default="auto",
+                   help="auto, srgb, bt709, linear, gamma=G or profile=FILE (default: auto)")
+    p.add_argument("--out", metavar="DIR", default=None,
+                   help="output folder (default: ./measure-<input name>)")
+    p.add_argument("--fps", type=float, default=None,
+                   help="frame rate for stills without capture times")
+    p.add_argument("--detect", default="threshold", choices=["threshold", "log"],
+                   help="spot detection: threshold + connected components, or Laplacian of "
+                   "Gaussian (default: threshold)")
+    p.add_argument("--no-drift", action="store_true",
+                   help="do not register frames (tripod recordings)")
+    p.add_argument("--force", action="store_true",
+                   help="write into an existing non-empty --out folder (replacing its files)")
+    p.add_argument("--json", action="store_true",
+                   help="print the spot table as JSON on stdout (for scripts)")
+    _common(p)
+    p.set_defaults(run=_run_measure)
+
+
+def _run_measure(args: argparse.Namespace) -> int:
+    import json
+    import math
+    from pathlib import Path
+
+    from .errors import SpotError
+    from .measure import (
+        MeasureSettings,
+        check_output_dir,
+        measure,
+        summary_table,
+        write_measure_outputs,
+    )
+
+    src = Path(args.input)
+    out = Path(args.out) if args.out else Path(f"measure-{src.stem if src.suffix else src.name}")
+    check_output_dir(out, force=args.force)
+    settings = MeasureSettings(channel=args.channel, transfer=args.transfer, fps=args.fps,
+                               detect=args.detect, drift=not args.no_drift)
+    result = measure(src, spots=args.spots, dark=args.dark, settings=settings,
+                     progress=not args.quiet)
+    if len(result.spot_set) == 0:
+        raise SpotError("no spot found; give the spots with --spots FILE (see spots.json "
+                        "of another run for the format) or try --detect log", path=src)
+    written = write_measure_outputs(result, out, force=args.force)
+    if args.json:
+        rows = [{k: (None if isinstance(v, float) and not math.isfinite(v) else v)
+                 for k, v in r.items()} for r in result.spots_table.to_dict(orient="records")]
+        print(json.dumps({"out": str(out), "spots": rows}, default=str))
+    elif not args.quiet:
+        print(summary_table(result))
+        print(f"wrote {len(written)} files to {out}")
+    return 0
+
+
 # --- END COMMANDS ---
 
 
