@@ -1192,8 +1192,8 @@ def _limits(cal: Calibration, blank_y: FloatArray, opts: CalibrationOptions) -> 
         y_lod, y_loq = mb + direction * opts.k_lod * sb, mb + direction * opts.k_loq * sb
         out["blank"] = {"available": True, "n_blanks": nb, "blank_mean": mb, "blank_sd": sb,
                         "k_lod": opts.k_lod, "k_loq": opts.k_loq, "lod_response": y_lod,
-                        "loq_response": y_loq, "lod": _inv_clip(cal, y_lod),
-                        "loq": _inv_clip(cal, y_loq),
+                        "loq_response": y_loq, "lod": _conc_at(cal, y_lod),
+                        "loq": _conc_at(cal, y_loq),
                         "basis": f"IUPAC: mean of {nb} blanks + {opts.k_lod:g} / {opts.k_loq:g} "
                                  "blank SD, read back through the calibration"}
         if nb < 10:
@@ -1209,8 +1209,8 @@ def _limits(cal: Calibration, blank_y: FloatArray, opts: CalibrationOptions) -> 
         y_loq = yb + direction * opts.k_loq * cal.s_yx
         out["intercept"] = {"available": True, "blank_response": yb, "sigma": cal.s_yx,
                             "k_lod": opts.k_lod, "k_loq": opts.k_loq, "lod_response": y_lod,
-                            "loq_response": y_loq, "lod": _inv_clip(cal, y_lod),
-                            "loq": _inv_clip(cal, y_loq),
+                            "loq_response": y_loq, "lod": _conc_at(cal, y_lod),
+                            "loq": _conc_at(cal, y_loq),
                             "basis": "Miller & Miller: blank = fitted response at 0, "
                                      f"s_B = s_y/x; {opts.k_lod:g} / {opts.k_loq:g} s_B"}
     else:
@@ -1237,7 +1237,8 @@ def _limits(cal: Calibration, blank_y: FloatArray, opts: CalibrationOptions) -> 
     return {"method": out.pop("method"), **out}, notes
 
 
-def _inv_clip(cal: Calibration, y: float) -> float:
+def _conc_at(cal: Calibration, y: float) -> float:
+    """Concentration at response y through the calibration (NaN where no solution)."""
     return float(cal.inverse(y))
 
 
