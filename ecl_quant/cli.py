@@ -331,6 +331,8 @@ def _add_quantify(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--seed", type=int, default=0, help="bootstrap seed (default: 0)")
     p.add_argument("--out", default="results.csv", metavar="FILE",
                    help="results table (default: results.csv)")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing --out file (and its .json)")
     _common(p)
     p.set_defaults(run=_run_quantify)
 
@@ -338,9 +340,10 @@ def _add_quantify(sub: argparse._SubParsersAction) -> None:
 def _run_quantify(args: argparse.Namespace) -> int:
     from pathlib import Path
 
-    from ._io import atomic_write, ensure_dir, write_json_atomic
+    from ._io import atomic_write, check_overwrite, ensure_dir, write_json_atomic
     from .calibration import load_calibration, quantify_table, read_table
 
+    check_overwrite([Path(args.out), Path(args.out).with_suffix(".json")], force=args.force)
     cal = load_calibration(args.calibration)
     df = read_table(args.table)
     try:

@@ -52,6 +52,10 @@ def test_calibrate_then_quantify(tmp_path: Path, capsys: pytest.CaptureFixture[s
     assert prov["arguments"]["calibration_sha256"] == doc["sha256"]
     rc = main(["quantify", str(unknowns), "--calibration", str(out), "--y", "fluor",
                "--out", str(res_path), "--method", "bootstrap", "--draws", "500", "--quiet"])
+    assert rc == 2 and "--force" in capsys.readouterr().err  # existing results kept
+    rc = main(["quantify", str(unknowns), "--calibration", str(out), "--y", "fluor",
+               "--out", str(res_path), "--method", "bootstrap", "--draws", "500", "--quiet",
+               "--force"])
     assert rc == 0 and capsys.readouterr().out == ""
     assert (pd.read_csv(res_path)["method"] == "bootstrap").all()
 
