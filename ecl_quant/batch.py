@@ -68,11 +68,11 @@ CHANNELS = ("red", "green", "blue", "luma", "raw")
 #: Columns a manifest may have; ``path``, ``sample`` and ``role`` are required.
 MANIFEST_COLUMNS = (
     "path", "sample", "role", "concentration", "spot", "dark", "spots", "channel",
-    "transfer", "notes",
+    "transfer", "exposure_s", "notes",
 )
 _REQUIRED = ("path", "sample", "role")
 _ALIASES = {"spots_file": "spots", "spot_file": "spots", "roi": "spots", "rois": "spots",
-            "comment": "notes", "note": "notes", "comments": "notes"}
+            "comment": "notes", "note": "notes", "comments": "notes", "exposure": "exposure_s"}
 #: Folder-name characters kept when naming a recording's output folder.
 _ID_UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
 
@@ -121,6 +121,8 @@ class ManifestRow:
         Resolved dark-frame source and spot file.
     channel, transfer : str or None
         Per-row overrides (``transfer`` with a profile path made absolute).
+    exposure_s : float or None
+        Exposure time for frames that carry none (video), s.
     notes : str
     """
 
@@ -135,6 +137,7 @@ class ManifestRow:
     spots_file: Path | None = None
     channel: str | None = None
     transfer: str | None = None
+    exposure_s: float | None = None
     notes: str = ""
 
 
@@ -151,6 +154,8 @@ class RecordingSpec:
     dark, spots_file : Path or None
     channel, transfer : str or None
         Overrides shared by all of the recording's rows (None = batch default).
+    exposure_s : float or None
+        Exposure time for frames without one (video), s.
     lines : tuple of int
         Manifest lines that refer to this recording.
     """
@@ -163,6 +168,7 @@ class RecordingSpec:
     channel: str | None
     transfer: str | None
     lines: tuple[int, ...]
+    exposure_s: float | None = None
 
 
 @dataclass(frozen=True)
@@ -289,6 +295,19 @@ def parse_spot_list(text: str) -> tuple[int, ...] | None:
     return tuple(out)
 
 
+def _parse_exposure(text: str) -> float:
+    """``0.0333`` or ``1/30`` -> seconds (> 0, finite)."""
+    t = text.strip()
+    if "/" in t:
+        num, den = t.split("/", 1)
+        value = float(num) / float(den)
+    else:
+        value = float(t)
+    if not (math.isfinite(value) and value > 0):
+        raise ValueError(text)
+    return value
+
+
 def format_spot_list(spots: tuple[int, ...] | None) -> str:
     """Inverse of :func:`parse_spot_list` (``""`` for all spots)."""
     return "" if spots is None else ";".join(str(s) for s in spots)
@@ -322,7 +341,8 @@ def read_manifest(path: str | Path, *, allow_outside: bool = False,
     (required for standards, empty or 0 for blanks, empty for unknowns), ``spot``
     (which spots of the recording belong to the sample; empty = all spots), ``dark``
     (dark frames), ``spots`` (a spot file), ``channel`` and ``transfer`` (per-row
-    overrides), ``notes``. Blank lines and lines starting with ``#`` are skipped.
+    overrides), ``exposure_s`` (exposure time in s, or a fraction such as ``1/30``, for
+    recordings whose frames carry none: video), ``notes``. Blank lines and lines starting with ``#`` are skipped.
 
     Parameters
     ----------
@@ -484,6 +504,13 @@ def read_manifest(path: str | Path, *, allow_outside: bool = False,
                         transfer = f"profile={prof}"
                 else:
                     transfer = str(spec)
+        exposure: float | None = None
+        etext = rec.get("exposure_s", "")
+        if etext:
+            try:
+                exposure = _parse_exposure(etext)
+            except (ValueError, ZeroDivisionError):
+                bad(f"exposure_s {etext!r} is not a time in seconds (e.g. 0.0333 or 1/30)")
         if row_problems:
             problems.extend(row_problems)
             continue
@@ -491,7 +518,8 @@ def read_manifest(path: str | Path, *, allow_outside: bool = False,
         rows.append(ManifestRow(line=line, path=rpath, path_text=ptext, sample=sample, role=role,
                                 concentration=conc, spots=spots, dark=resolved["dark"],
                                 spots_file=resolved["spots"], channel=channel,
-                                transfer=transfer, notes=rec.get("notes", "")))
+                                transfer=transfer, exposure_s=exposure,
+                                notes=rec.get("notes", "")))
 
     problems.extend(_cross_row_problems(rows))
     recordings = _group_recordings(rows, problems)
@@ -535,7 +563,7 @@ def _group_recordings(rows: Sequence[ManifestRow], problems: list[str]) -> tuple
     specs: list[RecordingSpec] = []
     for rpath, rs in groups.items():
         lines = ", ".join(str(r.line) for r in rs)
-        for attr in ("dark", "spots_file", "channel", "transfer"):
+        for attr in ("dark", "spots_file", "channel", "transfer", "exposure_s"):
             vals = {getattr(r, attr) for r in rs}
             if len(vals) > 1:
                 col = "spots" if attr == "spots_file" else attr
@@ -557,7 +585,8 @@ def _group_recordings(rows: Sequence[ManifestRow], problems: list[str]) -> tuple
         specs.append(RecordingSpec(
             rec_id=_rec_id(first.path_text, used), path=rpath, path_text=first.path_text,
             dark=first.dark, spots_file=first.spots_file, channel=first.channel,
-            transfer=first.transfer, lines=tuple(r.line for r in rs)))
+            transfer=first.transfer, lines=tuple(r.line for r in rs),
+            exposure_s=first.exposure_s))
     return tuple(specs)
 
 
@@ -967,6 +996,8 @@ RESULT_FLAGS: dict[str, str] = {
                     "extrapolation of the calibration.",
     "no_solution": "The calibration curve never reaches this reading, so no concentration "
                    "can be given.",
+    "replicate_excluded": "Some replicate spots of this sample were left out (saturated); "
+                          "the result uses the others.",
     "no_valid_reading": "Every spot of this sample was left out (saturated or not "
                         "measured), so there is nothing to quantify.",
 }
@@ -992,8 +1023,8 @@ class QCLimits:
         ``low_snr`` for spots of standards above zero and of unknowns below this SNR.
     """
 
-    drift_limit_px: float = 2.0
-    ambient_limit: float = 0.15
+    drift_limit_px: float = 3.0
+    ambient_limit: float = 0.10
     blur_limit: float = 0.02
     min_snr: float = 5.0
 
@@ -1260,7 +1291,8 @@ def _measure_into(job: _Job, key: str, folder: Path) -> None:
     try:
         result = _measure_recording(job)
         files = _write_recording_outputs(result, tmp)
-        qc = recording_qc_metrics(result)
+        qc = recording_qc_metrics(result, source=job.path, channel=job.channel,
+                                  transfer=job.transfer)
         _write_json(tmp / "qc.json", qc)
         files.append("qc.json")
         _write_json(tmp / "done.json", {
@@ -1363,7 +1395,8 @@ def run_batch(manifest: str | Path | Manifest, settings: BatchSettings, *,
                  channel=r.channel or settings.channel,
                  transfer=r.transfer or str(parse_transfer(settings.transfer)),
                  folder=str(rec_root / r.rec_id), force=settings.force, batch_id=batch_id,
-                 measure_options=settings.measure_options)
+                 measure_options=(dict(settings.measure_options) if r.exposure_s is None else
+                                  {**settings.measure_options, "exposure_s": r.exposure_s}))
             for r in man.recordings
         ]
         outcomes = _execute(jobs, settings, client=client, status=status)
@@ -1535,6 +1568,7 @@ def _assemble(man: Manifest, outcomes: Sequence[RecordingOutcome], rec_root: Pat
     by_id = {o.rec_id: o for o in outcomes}
     meas: list[dict[str, Any]] = []
     qc_rows: list[dict[str, Any]] = []
+    units: dict[str, Any] = {}
     errs: list[dict[str, Any]] = []
     resp_col = settings.response
     se_col = _RESPONSE_SE[resp_col]
@@ -1557,6 +1591,12 @@ def _assemble(man: Manifest, outcomes: Sequence[RecordingOutcome], rec_root: Pat
                                     "with --force"})
             continue
         available = [int(s) for s in spots["spot"]]
+        if not available:
+            errs.append({"recording": rec.rec_id, "path": rec.path_text, "lines": lines,
+                         "stage": "spots", "error": "NoSpots",
+                         "message": "no spot was found in this recording; check that the "
+                                    "pulse is visible, or give a spots file"})
+            continue
         missing = sorted({s for r in mrows for s in (r.spots or ()) if s not in available})
         if missing:
             errs.append({
@@ -1567,6 +1607,7 @@ def _assemble(man: Manifest, outcomes: Sequence[RecordingOutcome], rec_root: Pat
                            f"({format_spot_list(tuple(available)) or 'none'}); the numbering "
                            "cannot be trusted: give a spots file for this recording"})
             continue
+        units[rec.rec_id] = metrics.get("integral_unit")
         rec_flags = recording_flags(metrics, settings.qc)
         by_spot = {int(r["spot"]): r for r in spots.to_dict(orient="records")}
         rec_spot_flags: list[str] = []
@@ -1612,11 +1653,44 @@ def _assemble(man: Manifest, outcomes: Sequence[RecordingOutcome], rec_root: Pat
                                        for r in by_spot.values())),
             "flags": _join_flags(rec_flags, [w for w in rec_spot_flags if w != "no_pulse"]),
         })
+    meas, qc_rows = _check_units(meas, qc_rows, units, errs, man)
     return {
         "measurements": pd.DataFrame(meas, columns=_MEAS_COLUMNS),
         "qc": pd.DataFrame(qc_rows, columns=_QC_COLUMNS),
         "errors": pd.DataFrame(errs, columns=_ERR_COLUMNS),
     }
+
+
+def _check_units(meas: list[dict[str, Any]], qc_rows: list[dict[str, Any]],
+                 units: Mapping[str, Any], errs: list[dict[str, Any]],
+                 man: Manifest) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
+    """Drop recordings whose integrals are in other units than the standards' ones.
+
+    A recording whose frames carry an exposure time is integrated per second of
+    exposure (unit FS); one without (video) in FS x s unless ``exposure_s`` is given.
+    Mixing them would put a factor of the exposure time into the results.
+    """
+    std_units = [units[m["recording"]] for m in meas if m["role"] != "unknown"]
+    if not std_units:
+        return meas, qc_rows
+    ref = max(set(std_units), key=std_units.count)
+    bad = {rid for rid, u in units.items() if u != ref}
+    specs = {r.rec_id: r for r in man.recordings}
+    for rid in sorted(bad, key=list(units).index):
+        rec = specs[rid]
+        errs.append({
+            "recording": rid, "path": rec.path_text,
+            "lines": ";".join(str(n) for n in rec.lines), "stage": "units",
+            "error": "UnitMismatch",
+            "message": f"its integrals are in {units[rid]} but the standards' are in {ref}: "
+                       "its frames carry no exposure time (video) while the standards' do; "
+                       "give its exposure time in the manifest's exposure_s column "
+                       "(e.g. 1/30)" if ref == "FS" else
+                       f"its integrals are in {units[rid]} but the standards' are in {ref}; "
+                       "record standards and samples the same way or give exposure_s for "
+                       "every recording"})
+    return ([m for m in meas if m["recording"] not in bad],
+            [q for q in qc_rows if q["recording"] not in bad])
 
 
 def _num(value: Any, default: float = math.nan) -> float:
@@ -1717,8 +1791,10 @@ def _quantify(tables: Mapping[str, Any], cal: Any, settings: BatchSettings) -> A
         by_sample = {}
     for s in samples:
         sm = unk[unk["sample"] == s]
-        qc_flags = [w for f in sm["flags"] for w in _split_flags(f)
-                    if w not in ("no_pulse",)]
+        qc_flags = [w for f in sm.loc[sm["used"].astype(bool), "flags"]
+                    for w in _split_flags(f) if w not in ("no_pulse",)]
+        if (~sm["used"].astype(bool)).any() and sm["used"].astype(bool).any():
+            qc_flags.append("replicate_excluded")
         recs = ";".join(dict.fromkeys(sm["recording"].tolist()))
         r = by_sample.get(str(s))
         if r is None:
@@ -1781,20 +1857,22 @@ def spot_sharpness(image: Any, spots: Iterable[tuple[float, float, float]], *,
                    n_brightest: int = 3) -> float:
     """Sharpness of spot edges: variance of the Laplacian on the spot projection.
 
-    For each spot a box of +-1.6 radius is cut out and normalised to its contrast
-    (core median minus the median of the ring beyond 1.25 radius), the 4-neighbour
-    Laplacian is taken (OpenCV), and its variance, less the variance it has on the
-    ring alone (noise), is multiplied by the radius so the score does not depend on
-    the spot size. The median over the ``n_brightest`` spots of highest contrast is
-    returned. For the simulator's logistic spot edge (radius 13 px) the score is about
-    0.13 at an edge scale of 0.45 px, 0.03 at 0.8 px and 0.005 at 1.5 px (noiseless
-    spots); NaN when no spot has positive contrast.
+    Each spot's half-maximum radius R is measured on the image itself (area above half
+    its contrast), so the score does not depend on whether ``radius_px`` is the spot or
+    a larger aperture. A box of +-(1.6 R + 2) px is normalised to the spot contrast
+    (core median minus the median of the ring beyond 1.25 R), the 4-neighbour Laplacian
+    is taken (OpenCV), and its variance, less the variance it has on the ring alone
+    (noise), is multiplied by R. The median over the ``n_brightest`` spots of highest
+    contrast is returned. For the simulator's logistic spot edge (R = 13 px) the score is
+    about 0.13 at an edge scale of 0.45 px, 0.03 at 0.8 px and 0.005 at 1.5 px
+    (noiseless spots); NaN when no spot has positive contrast or a finite box.
 
     Parameters
     ----------
     image : (H, W) ndarray
-        Projection of the recording (max over time), linear.
+        Projection of the recording (max over time), linear; NaN where not computed.
     spots : iterable of (x_px, y_px, radius_px)
+        Centres and an approximate radius (spot or aperture).
     n_brightest : int
 
     Returns
@@ -1807,38 +1885,161 @@ def spot_sharpness(image: Any, spots: Iterable[tuple[float, float, float]], *,
     in brightfield microscopy: a comparative study", ICPR 2000 (variance of the
     Laplacian as a focus measure).
     """
-    import cv2
     import numpy as np
 
     img = np.asarray(image)
-    h, w = img.shape[:2]
     scored: list[tuple[float, float]] = []
     for x, y, r in spots:
         if not (r > 1 and math.isfinite(x) and math.isfinite(y)):
             continue
-        half = int(math.ceil(1.6 * r)) + 2
-        xi, yi = int(round(x)), int(round(y))
-        x0, x1 = max(xi - half, 0), min(xi + half + 1, w)
-        y0, y1 = max(yi - half, 0), min(yi + half + 1, h)
-        if x1 - x0 < 5 or y1 - y0 < 5:
+        first = _normalised_box(img, x, y, r)
+        if first is None:
             continue
-        crop = img[y0:y1, x0:x1].astype(np.float32)
-        yy, xx = np.mgrid[y0:y1, x0:x1]
-        rho = np.hypot(xx - x, yy - y)
-        ring = rho > 1.25 * r
-        core = rho < 0.5 * r
-        if ring.sum() < 8 or core.sum() < 4:
+        z, rho, _contrast = first
+        r_half = math.sqrt(float((z[rho < 1.25 * r] > 0.5).sum()) / math.pi)
+        if r_half < 1.5:
             continue
-        bg = float(np.median(crop[ring]))
-        contrast = float(np.median(crop[core])) - bg
-        if not contrast > 0:
+        second = _normalised_box(img, x, y, r_half)
+        if second is None:
             continue
-        lap = cv2.Laplacian((crop - bg) / contrast, cv2.CV_32F, ksize=1)
-        inner = lap[1:-1, 1:-1]
-        ring_in = ring[1:-1, 1:-1] & (rho[1:-1, 1:-1] > 1.25 * r + 2)
-        noise = float(inner[ring_in].var()) if ring_in.sum() >= 8 else 0.0
-        scored.append((contrast, max(float(inner.var()) - noise, 0.0) * float(r)))
+        scored.append((second[2], _laplacian_score(*second[:2], r_half)))
     if not scored:
         return math.nan
     scored.sort(reverse=True)
     return float(np.median([s for _c, s in scored[:n_brightest]]))
+
+
+def _normalised_box(img: Any, x: float, y: float, r: float) -> Any:
+    """(z, rho, contrast): the box +-(1.6 r + 2) around a spot, 0 = ring, 1 = core."""
+    import numpy as np
+
+    h, w = img.shape[:2]
+    half = int(math.ceil(1.6 * r)) + 2
+    xi, yi = int(round(x)), int(round(y))
+    x0, x1, y0, y1 = xi - half, xi + half + 1, yi - half, yi + half + 1
+    if x0 < 0 or y0 < 0 or x1 > w or y1 > h:
+        return None
+    crop = np.asarray(img[y0:y1, x0:x1], dtype=np.float32)
+    if not np.isfinite(crop).all():
+        return None
+    yy, xx = np.mgrid[y0:y1, x0:x1]
+    rho = np.hypot(xx - x, yy - y)
+    ring, core = rho > 1.25 * r, rho < 0.5 * r
+    if ring.sum() < 8 or core.sum() < 4:
+        return None
+    bg = float(np.median(crop[ring]))
+    contrast = float(np.median(crop[core])) - bg
+    if not contrast > 0:
+        return None
+    return (crop - bg) / contrast, rho, contrast
+
+
+def _laplacian_score(z: Any, rho: Any, r: float) -> float:
+    import cv2
+
+    lap = cv2.Laplacian(z.astype("float32"), cv2.CV_32F, ksize=1)[1:-1, 1:-1]
+    rho_in = rho[1:-1, 1:-1]
+    ring = rho_in > 1.25 * r + 2
+    noise = float(lap[ring].var()) if ring.sum() >= 8 else 0.0
+    return max(float(lap.var()) - noise, 0.0) * float(r)
+
+
+def ambient_fraction(source: str | Path, *, channel: str, transfer: str,
+                     spots: Iterable[tuple[float, float, float]] = ()) -> float:
+    """Median linear level of the first frame outside the spots, as a fraction of full
+    scale (per frame, not per second).
+
+    An ECL card is read in the dark: the first frame (before the pulse) shows card,
+    dark offset and any room light leaking in. Spots (x, y, radius) are masked out.
+    """
+    import numpy as np
+
+    from .frames import open_recording
+    from .radiometry import linear_values
+
+    frames = open_recording(source).frames()
+    try:
+        frame = next(frames, None)
+    finally:
+        frames.close()
+    if frame is None:
+        return math.nan
+    lin = np.asarray(linear_values(frame, channel, transfer), dtype=np.float32)
+    keep = np.ones(lin.shape, bool)
+    yy, xx = np.ogrid[0:lin.shape[0], 0:lin.shape[1]]
+    for x, y, r in spots:
+        keep &= (xx - x) ** 2 + (yy - y) ** 2 > (1.5 * r) ** 2
+    vals = lin[keep] if keep.any() else lin.ravel()
+    return float(np.median(vals))
+
+
+def recording_qc_metrics(result: Any, *, source: str | Path, channel: str,
+                         transfer: str) -> dict[str, Any]:
+    """Field QC numbers of one measured recording (written to ``qc.json``).
+
+    Parameters
+    ----------
+    result : MeasureResult
+    source : str or Path
+        The recording (its first frame is read again for the ambient level).
+    channel, transfer : str
+
+    Returns
+    -------
+    dict
+        kind, n_frames, n_spots, max_drift_px (largest registration shift from the first
+        frame), blur_score (:func:`spot_sharpness` on the max projection),
+        ambient_fraction (:func:`ambient_fraction`), exposure_changed, saturated_spots.
+    """
+    import numpy as np
+
+    prov = result.provenance or {}
+    rec = prov.get("inputs", {}).get("recording", {})
+    analysis = prov.get("analysis", {})
+    ct = result.curves_table
+    st = result.spots_table
+    geometry = [(float(s.x_px), float(s.y_px), float(s.radius_px)) for s in result.spot_set]
+    if len(ct):
+        max_drift = float(np.nanmax(np.hypot(ct["shift_x_px"].to_numpy(float),
+                                             ct["shift_y_px"].to_numpy(float))))
+    else:
+        max_drift = math.nan
+    flags = [w for f in st["flags"] for w in _split_flags(f)] if len(st) else []
+    saturated = [int(s) for s, n in zip(st["spot"], st["saturated_frames"])
+                 if _num(n, 0) > 0] if len(st) else []
+    return {
+        "kind": rec.get("kind"),
+        "n_frames": rec.get("n_frames"),
+        "n_spots": len(st),
+        "max_drift_px": max_drift,
+        "blur_score": spot_sharpness(result.projection_max, geometry),
+        "ambient_fraction": ambient_fraction(source, channel=channel, transfer=transfer,
+                                             spots=geometry),
+        "exposure_changed": bool(analysis.get("exposure_changed")) or
+                            "exposure_changed" in flags,
+        "saturated_spots": saturated,
+        "integral_unit": analysis.get("integral_unit"),
+    }
+
+
+# ------------------------------------------------------------------ measure adapters
+
+
+def _make_settings(job: _Job) -> Any:
+    from .measure import MeasureSettings
+
+    return MeasureSettings(channel=job.channel, transfer=job.transfer,
+                           **dict(job.measure_options))
+
+
+def _measure_recording(job: _Job) -> Any:
+    from .measure import measure
+
+    return measure(job.path, spots=job.spots_file, dark=job.dark,
+                   settings=_make_settings(job), progress=False)
+
+
+def _write_recording_outputs(result: Any, folder: Path) -> list[str]:
+    from .measure import write_measure_outputs
+
+    return [Path(p).name for p in write_measure_outputs(result, folder, force=True)]

@@ -9,7 +9,7 @@ overexposed spot). Everything is made by :mod:`ecl_quant.simulate`; nothing in i
 real measurement.
 
 :func:`simulate_scenario` writes the recordings, ``manifest.csv`` (paths relative to
-it), ``truth.json`` (the simulator's ground truth: true concentrations, the response
+it), ``card-layout.json`` (the card's spot file), ``truth.json`` (the simulator's ground truth: true concentrations, the response
 model and the true calibration slope) and a short ``README.md``.
 """
 
@@ -34,6 +34,10 @@ __all__ = ["SCENARIO_NAME", "ResponseModel", "CardPlan", "scenario_plan", "simul
 SCENARIO_NAME = "Tern Lake Hatchery"
 UNITS = "umol/L"
 STANDARD_LEVELS = (0.0, 1.0, 2.0, 5.0, 10.0, 20.0, 50.0)
+#: The printed card's spot layout (spot file shared by every recording).
+LAYOUT_FILE = "card-layout.json"
+#: Aperture radius of the layout, px: the printed electrode (13 px) plus its soft edge.
+APERTURE_PX = 17.0
 
 
 @dataclass(frozen=True)
@@ -41,16 +45,20 @@ class ResponseModel:
     """How the simulated card turns concentration into light.
 
     The peak value of a spot centre (red, FS per frame at the base exposure) is
-    ``blank_fs + slope_fs_per_conc * c``: linear over the calibrated range. (The top of
-    the card's range is where the camera saturates, shown by the flawed recording.)
+    ``blank_fs + slope_fs_per_conc * c + e``: linear over the calibrated range, with a
+    random electrode-to-electrode offset ``e`` ~ N(0, ``spot_sd_fs``) per spot (printed
+    electrodes differ in their background emission). The top of the card's range is
+    where the camera saturates, shown by the flawed recording.
     """
 
-    blank_fs: float = 0.004
+    blank_fs: float = 0.006
     slope_fs_per_conc: float = 0.0105
+    spot_sd_fs: float = 0.003
 
-    def amplitude(self, concentration: float) -> float:
-        """Peak centre value for a concentration, FS per frame."""
-        return self.blank_fs + self.slope_fs_per_conc * float(concentration)
+    def amplitude(self, concentration: float, offset_fs: float = 0.0) -> float:
+        """Peak centre value for a concentration and electrode offset, FS per frame."""
+        return max(self.blank_fs + self.slope_fs_per_conc * float(concentration) + offset_fs,
+                   1e-4)
 
 
 @dataclass(frozen=True)
@@ -127,7 +135,7 @@ def scenario_plan() -> tuple[CardPlan, ...]:
         # overexposed (a drop of concentrated reagent).
         CardPlan("card-G", "jpeg", (*(_unk("pond-5-settling", u["pond-5-settling"]),) * 4,
                                     *(_unk("pond-6-spring", u["pond-6-spring"]),) * 4),
-                 {"ambient_fs": 0.22, "drift_px": 4.0, "saturate_spot": 8,
+                 {"ambient_fs": 0.3, "drift_px": 5.0, "saturate_spot": 8,
                   "saturate_amplitude": 1.6}),
     )
 
@@ -135,19 +143,32 @@ def scenario_plan() -> tuple[CardPlan, ...]:
 def _base_spec(seed: int, index: int) -> SimulationSpec:
     return SimulationSpec(
         size=(240, 320), n_rows=2, n_cols=4, radius_px=13.0, spacing_px=62.0, edge_px=0.45,
-        onset_s=0.6, rise_s=0.35, decay_s=1.1, n_frames=48, fps=8.0,
+        onset_s=0.6, rise_s=0.35, decay_s=1.1, n_frames=40, fps=8.0,
         exposure_s=1.0 / 30.0, iso=100, gain_e_per_fs=4000.0, read_noise_fs=0.0012,
         dark_level_fs=0.004, background_rgb=(0.030, 0.028, 0.025), ambient_fs=0.02,
         n_hot_pixels=4, drift_px=0.6, encoding="jpeg", jpeg_quality=90,
-        jpeg_subsampling="4:4:4", crf=12, video_preset="medium",
+        jpeg_subsampling="4:4:4", crf=14, video_preset="medium",
         start_time=f"2024-06-0{3 + index // 4}T{9 + index:02d}:15:00", seed=seed,
     )
+
+
+def _write_layout(path: Path, spec: SimulationSpec) -> None:
+    """The card's spot file: one circle per electrode at the printed positions."""
+    from .spots import SpotSet, make_spot, save_spots
+
+    xs, ys = spec.spot_centres()
+    spots = tuple(make_spot(k + 1, "circle", (float(x), float(y), APERTURE_PX),
+                            label=f"electrode {k + 1}") for k, (x, y) in enumerate(zip(xs, ys)))
+    save_spots(SpotSet(spots, spec.size, (), {"made_by": "ecl_quant.scenario",
+                                              "card": "eight-spot electrode card, 2 x 4"}),
+               path)
 
 
 def _manifest_text(cards: Sequence[CardPlan]) -> str:
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["path", "sample", "role", "concentration", "spot", "dark", "notes"])
+    w.writerow(["path", "sample", "role", "concentration", "spot", "spots", "dark",
+                "exposure_s", "notes"])
     for card in cards:
         groups: dict[str, list[int]] = {}
         meta: dict[str, tuple[str, float | None]] = {}
@@ -158,9 +179,11 @@ def _manifest_text(cards: Sequence[CardPlan]) -> str:
             role, conc = meta[sample]
             spot = (f"{numbers[0]}-{numbers[-1]}" if numbers == list(range(numbers[0],
                     numbers[-1] + 1)) and len(numbers) > 1 else ";".join(map(str, numbers)))
-            note = "flawed field recording" if card.options else ""
+            note = ("flawed field recording" if card.options else
+                    "video, exposure locked at 1/30 s" if card.encoding == "h264" else "")
             w.writerow([card.path, sample, role, "" if conc is None else f"{conc:g}", spot,
-                        f"{card.name}-dark" if card.dark else "", note])
+                        LAYOUT_FILE, f"{card.name}-dark" if card.dark else "",
+                        "1/30" if card.encoding == "h264" else "", note])
     return buf.getvalue()
 
 
@@ -179,6 +202,7 @@ Nothing here is a real measurement. Made by the project's simulator:
     ecl-quant simulate --out sample_frames --seed {seed}
 
 - `manifest.csv`: the batch manifest (paths relative to it).
+- `card-layout.json`: the printed card's spot layout (a spot file, editable).
 - `truth.json`: the simulator's ground truth (true concentrations, response model,
   true calibration slope, every spot's exact integral).
 
@@ -213,12 +237,16 @@ def simulate_scenario(out_dir: str | Path, *, seed: int = 7, overwrite: bool = T
     model = ResponseModel()
     cards = scenario_plan()
     truth_cards: list[dict[str, Any]] = []
+    rng = np.random.default_rng([seed, 4242])
     std_x: list[float] = []
     std_y: list[float] = []
     full_per_amp: list[float] = []
+    span_per_amp: list[float] = []
     for index, card in enumerate(cards):
         spec = _base_spec(seed * 100 + index, index)
-        amps = tuple(model.amplitude(true) for (_s, _r, _c, true) in card.spots)
+        offsets = rng.normal(0.0, model.spot_sd_fs, len(card.spots))
+        amps = tuple(model.amplitude(true, e) for (_s, _r, _c, true), e in
+                     zip(card.spots, offsets))
         spec = replace(spec, encoding=card.encoding, amplitudes=amps, **dict(card.options))
         target = out / card.path
         if target.exists():
@@ -233,10 +261,11 @@ def simulate_scenario(out_dir: str | Path, *, seed: int = 7, overwrite: bool = T
                 shutil.rmtree(dark_target)
             simulate_darks(dark_target, spec, n_frames=8)
         spots = []
-        for (sample, role, conc, true), st in zip(card.spots, truth.spots):
+        for (sample, role, conc, true), st, off in zip(card.spots, truth.spots, offsets):
             spots.append({
                 "spot": st.number, "sample": sample, "role": role,
-                "concentration": true, "x_px": st.x_px, "y_px": st.y_px,
+                "concentration": true, "electrode_offset_fs": float(off),
+                "x_px": st.x_px, "y_px": st.y_px,
                 "radius_px": st.radius_px, "amplitude_fs": st.amplitude_fs,
                 "integral": st.integral, "integral_full": st.integral_full,
                 "peak_signal": st.peak_signal, "peak_time_s": st.peak_time_s,
@@ -246,6 +275,8 @@ def simulate_scenario(out_dir: str | Path, *, seed: int = 7, overwrite: bool = T
                 std_x.append(true)
                 std_y.append(st.integral)
             full_per_amp.append(st.integral_full / st.amplitude_fs)
+            if not st.saturated:
+                span_per_amp.append(st.integral / st.amplitude_fs)
         truth_cards.append({
             "path": card.path, "encoding": truth.encoding, "n_frames": truth.n_frames,
             "size": list(truth.size), "exposure_s": truth.exposure_s,
@@ -254,9 +285,11 @@ def simulate_scenario(out_dir: str | Path, *, seed: int = 7, overwrite: bool = T
             "max_drift_px": float(np.abs(np.asarray(truth.drift_px)).max()),
             "seed": spec.seed, "spots": spots,
         })
-    # True calibration line: ordinary least squares of the exact spot integrals (over the
-    # recorded span) on concentration, standards only.
-    slope, intercept = np.polyfit(np.asarray(std_x), np.asarray(std_y), 1)
+    # True calibration slope: the response model's slope times the integral (over the
+    # recorded span) per unit of peak amplitude, the same for every spot (one pulse shape,
+    # one onset). Also the OLS line of the exact integrals of these particular standards.
+    slope = model.slope_fs_per_conc * float(np.mean(span_per_amp))
+    ols_slope, ols_intercept = np.polyfit(np.asarray(std_x), np.asarray(std_y), 1)
     doc: dict[str, Any] = {
         "scenario": SCENARIO_NAME,
         "note": "Invented demo data made by the ecl_quant simulator; not a measurement.",
@@ -265,16 +298,23 @@ def simulate_scenario(out_dir: str | Path, *, seed: int = 7, overwrite: bool = T
         "response": "integral",
         "response_model": {
             "blank_fs": model.blank_fs, "slope_fs_per_conc": model.slope_fs_per_conc,
-            "formula": "spot peak (FS per frame) = blank_fs + slope_fs_per_conc * c",
+            "spot_sd_fs": model.spot_sd_fs,
+            "formula": "spot peak (FS per frame) = blank_fs + slope_fs_per_conc * c + e, "
+                       "e ~ N(0, spot_sd_fs) per electrode",
             "integral_per_conc": float(model.slope_fs_per_conc * np.mean(full_per_amp)),
         },
-        "calibration_truth": {"slope": float(slope), "intercept": float(intercept),
-                              "method": "OLS of exact spot integrals on concentration, "
-                                        "standards"},
+        "calibration_truth": {
+            "slope": slope,
+            "intercept": model.blank_fs * float(np.mean(span_per_amp)),
+            "method": "response model slope x exact integral per unit peak amplitude",
+            "ols_slope_of_exact_integrals": float(ols_slope),
+            "ols_intercept_of_exact_integrals": float(ols_intercept),
+        },
         "unknowns": dict(_UNKNOWNS),
         "standards": list(STANDARD_LEVELS),
         "recordings": truth_cards,
     }
+    _write_layout(out / LAYOUT_FILE, _base_spec(seed * 100, 0))
     write_text_atomic(out / "manifest.csv", _manifest_text(cards))
     write_json_atomic(out / "truth.json", doc)
     write_text_atomic(out / "README.md", _readme(seed))

@@ -10,6 +10,7 @@ concentrations; the simulator's exact ground truth for the demo.
 from __future__ import annotations
 
 import hashlib
+import shutil
 import json
 import os
 import signal
@@ -299,3 +300,255 @@ def test_execution_layers_agree():
                       dashboard_address=None) as cluster:
         assert _collect(dask=cluster.scheduler_address) == expected
     assert list(iter_completed(_square_or_fail, [], workers=2)) == []
+
+
+# ------------------------------------------------------------------ end to end
+
+import pandas as pd  # noqa: E402
+
+from ecl_quant.batch import BatchSettings, run_batch  # noqa: E402
+from ecl_quant.cli import main  # noqa: E402
+from ecl_quant.simulate import SimulationSpec, simulate_recording  # noqa: E402
+
+# Tiny simulated cards: 96x72 px, 3 spots, 25 frames (fast); response linear in c.
+_GOOD = [  # (path, sample, role, concentration, true concentration, encoding)
+    ("s0", "S0", "standard", 0.0, 0.0, "jpeg"),
+    ("s2", "S2", "standard", 2.0, 2.0, "jpeg"),
+    ("s5", "S5", "standard", 5.0, 5.0, "jpeg"),
+    ("s10", "S10", "standard", 10.0, 10.0, "jpeg"),
+    ("s20", "S20", "standard", 20.0, 20.0, "jpeg"),
+    ("blank", "B", "blank", None, 0.0, "jpeg"),
+    ("u1.mp4", "U1", "unknown", None, 3.0, "h264"),
+    ("u2", "U2", "unknown", None, 12.0, "jpeg"),
+]
+_OUTPUTS = ("measurements.csv", "results.csv", "qc.csv", "errors.csv")
+
+
+def _tiny(path: Path, conc: float, seed: int, encoding: str) -> None:
+    amp = 0.01 + 0.02 * conc
+    spec = SimulationSpec(size=(72, 96), n_rows=1, n_cols=3, radius_px=6.0, spacing_px=24.0,
+                          amplitudes=(amp, amp, amp), n_frames=25, fps=8.0, onset_s=0.4,
+                          rise_s=0.3, decay_s=0.8, drift_px=0.3, n_hot_pixels=1,
+                          encoding=encoding, crf=12, seed=seed)
+    simulate_recording(path, spec)
+
+
+def _manifest(rows, path: Path) -> Path:
+    lines = ["path,sample,role,concentration"]
+    for p, sample, role, conc, *_ in rows:
+        lines.append(f"{p},{sample},{role},{'' if conc is None else f'{conc:g}'}")
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+@pytest.fixture(scope="module")
+def study(tmp_path_factory):
+    root = tmp_path_factory.mktemp("study")
+    for k, (p, _s, _r, _c, true, enc) in enumerate(_GOOD):
+        _tiny(root / p, true, 500 + k, enc)
+    # Two corrupt recordings: a video cut short before its index, a burst with a
+    # damaged frame.
+    _tiny(root / "cut.mp4", 5.0, 598, "h264")
+    data = (root / "cut.mp4").read_bytes()
+    (root / "cut.mp4").write_bytes(data[: len(data) // 3])
+    _tiny(root / "damaged", 5.0, 599, "jpeg")
+    frames = sorted((root / "damaged").iterdir())
+    frames[10].write_bytes(frames[10].read_bytes()[:200])
+    good = _manifest(_GOOD, root / "good.csv")
+    bad = [("cut.mp4", "S5", "standard", 5.0), ("damaged", "U3", "unknown", None)]
+    partial = _manifest([*_GOOD[:3], bad[0], *_GOOD[3:], bad[1]], root / "partial.csv")
+    return {"root": root, "good": good, "partial": partial}
+
+
+def _calibration_doc(out: Path) -> dict:
+    doc = json.loads((out / "calibration.json").read_text())
+    doc.pop("provenance", None)  # holds the date of the fit
+    doc.pop("sha256", None)  # hash over the content including provenance
+    return doc
+
+
+def _same_outputs(a: Path, b: Path) -> None:
+    for name in _OUTPUTS:
+        assert (a / name).read_bytes() == (b / name).read_bytes(), name
+    assert _calibration_doc(a) == _calibration_doc(b)
+
+
+def _statuses(out: Path) -> dict[str, str]:
+    doc = json.loads((out / "batch.json").read_text())
+    return {r["rec_id"]: r["status"] for r in doc["recordings"]}
+
+
+def test_partial_batch_finishes_the_rest(study, tmp_path, capsys):
+    out = tmp_path / "out"
+    rc = main(["batch", str(study["partial"]), "--out", str(out), "--workers", "2"])
+    captured = capsys.readouterr()
+    assert rc == 1
+    assert "partial: 2 of 10 recording(s) failed" in captured.err
+    errors = pd.read_csv(out / "errors.csv")
+    assert sorted(errors["path"]) == ["cut.mp4", "damaged"]
+    assert set(errors["stage"]) == {"measure"}
+    assert all(isinstance(m, str) and m for m in errors["message"])
+    statuses = _statuses(out)
+    assert sum(s == "measured" for s in statuses.values()) == 8
+    results = pd.read_csv(out / "results.csv")
+    assert list(results["sample"]) == ["U1", "U2"]  # U3 lived only on the damaged burst
+    assert results["concentration"].notna().all()
+    meas = pd.read_csv(out / "measurements.csv")
+    assert set(meas["recording"]) == {p for p, *_ in _GOOD}
+    assert (out / "report.html").is_file() and (out / "calibration.json").is_file()
+    # The summary on stdout names both failures and the results.
+    assert "cut.mp4" in captured.out and "damaged" in captured.out and "U2" in captured.out
+
+
+def test_same_results_from_one_two_workers_and_dask(study, tmp_path):
+    from distributed import Client, LocalCluster
+
+    outs = {}
+    for name, kw in (("w1", {"workers": 1}), ("w2", {"workers": 2})):
+        outs[name] = tmp_path / name
+        res = run_batch(study["good"], BatchSettings(out_dir=outs[name], progress=False, **kw))
+        assert res.exit_code == 0
+    outs["dask"] = tmp_path / "dask"
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                      dashboard_address=None) as cluster, Client(cluster) as client:
+        res = run_batch(study["good"], BatchSettings(out_dir=outs["dask"], progress=False),
+                        client=client)
+    assert res.exit_code == 0
+    assert set(_statuses(outs["dask"]).values()) == {"measured"}
+    _same_outputs(outs["w1"], outs["w2"])
+    _same_outputs(outs["w1"], outs["dask"])
+
+
+def test_sigkill_midway_then_resume(study, tmp_path):
+    clean = tmp_path / "clean"
+    assert run_batch(study["good"], BatchSettings(out_dir=clean, workers=1,
+                                                  progress=False)).exit_code == 0
+    out = tmp_path / "killed"
+    proc = subprocess.Popen([sys.executable, "-m", "ecl_quant", "batch", str(study["good"]),
+                             "--out", str(out), "--workers", "1", "--quiet"],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    deadline = time.monotonic() + 120
+    done: list[Path] = []
+    try:
+        while time.monotonic() < deadline and proc.poll() is None:
+            done = sorted((out / "recordings").glob("*/done.json"))
+            if len(done) >= 3:
+                proc.send_signal(signal.SIGKILL)
+                break
+            time.sleep(0.005)
+        proc.wait(timeout=30)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        proc.stderr.close()
+    assert proc.returncode == -signal.SIGKILL, "the batch ended before it could be killed"
+    finished = {p.parent.name: (p.read_bytes(), p.stat().st_mtime_ns)
+                for p in (out / "recordings").glob("*/done.json")}
+    assert 3 <= len(finished) < len(_GOOD)
+    assert (out / ".ecl-quant.lock").exists()  # left behind by the killed batch
+    assert not (out / "results.csv").exists()
+
+    rc = main(["batch", str(study["good"]), "--out", str(out), "--workers", "1", "--quiet"])
+    assert rc == 0
+    statuses = _statuses(out)
+    for rec_id, (content, mtime) in finished.items():
+        assert statuses[rec_id] == "cached"
+        p = out / "recordings" / rec_id / "done.json"
+        assert p.read_bytes() == content and p.stat().st_mtime_ns == mtime
+    assert sum(s == "measured" for s in statuses.values()) == len(_GOOD) - len(finished)
+    assert not list((out / "recordings").glob(".*"))  # no partial folders left
+    _same_outputs(clean, out)
+    # A third run measures nothing.
+    assert main(["batch", str(study["good"]), "--out", str(out), "--quiet"]) == 0
+    assert set(_statuses(out).values()) == {"cached"}
+
+
+def test_cache_follows_content_and_parameters(study, tmp_path):
+    root = tmp_path / "copy"
+    shutil.copytree(study["root"], root, ignore=shutil.ignore_patterns("cut.mp4", "damaged"))
+    out = tmp_path / "out"
+    settings = BatchSettings(out_dir=out, workers=1, progress=False)
+    assert run_batch(root / "good.csv", settings).exit_code == 0
+    # Change one frame of one burst: only that recording is measured again.
+    frame = sorted((root / "s5").iterdir())[0]
+    frame.write_bytes(frame.read_bytes() + b"\0")
+    run_batch(root / "good.csv", settings)
+    st = _statuses(out)
+    assert st.pop("s5") == "measured" and set(st.values()) == {"cached"}
+    # --response changes only the calibration, not the measurement.
+    run_batch(root / "good.csv", BatchSettings(out_dir=out, workers=1, progress=False,
+                                               response="peak"))
+    assert set(_statuses(out).values()) == {"cached"}
+    # Another channel changes every measurement.
+    run_batch(root / "good.csv", BatchSettings(out_dir=out, workers=1, progress=False,
+                                               channel="green"))
+    assert set(_statuses(out).values()) == {"measured"}
+    # --force measures everything again.
+    run_batch(root / "good.csv", BatchSettings(out_dir=out, workers=1, progress=False,
+                                               channel="green", force=True))
+    assert set(_statuses(out).values()) == {"measured"}
+
+
+def test_second_batch_on_the_same_folder_is_refused(study, tmp_path, capsys):
+    out = tmp_path / "out"
+    out.mkdir()
+    with OutputLock(out):
+        rc = main(["batch", str(study["good"]), "--out", str(out), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc == 2
+    assert err.startswith("error: ") and "another batch" in err and f"pid {os.getpid()}" in err
+    assert len(err.strip().splitlines()) == 1
+    assert not (out / "recordings").exists() or not any((out / "recordings").iterdir())
+
+
+def test_bad_manifest_stops_before_any_work(study, tmp_path, capsys):
+    m = tmp_path / "m.csv"
+    m.write_text("path,sample,role,concentration\nnope.mp4,A,standard,1\nx,B,unknwn,\n")
+    out = tmp_path / "out"
+    assert main(["batch", str(m), "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "3 problems in the manifest" in err
+    assert "line 2" in err and "line 3" in err and "two different concentrations" in err
+    assert not out.exists()
+
+
+def test_foreign_output_folder_needs_force(study, tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "thesis.docx").write_bytes(b"x")
+    with pytest.raises(OutputError, match="not from a batch"):
+        run_batch(study["good"], BatchSettings(out_dir=out, workers=1, progress=False))
+    assert (out / "thesis.docx").exists()
+
+
+# ------------------------------------------------------------------ the demo
+
+
+def test_demo_recovers_the_simulated_truth(tmp_path):
+    manifest = REPO / "sample_frames" / "manifest.csv"
+    truth = json.loads((REPO / "sample_frames" / "truth.json").read_text())
+    out = tmp_path / "demo"
+    res = run_batch(manifest, BatchSettings(out_dir=out, workers=2, progress=False))
+    assert res.exit_code == 0, res.errors
+    results = pd.read_csv(out / "results.csv").set_index("sample")
+    assert set(results.index) == set(truth["unknowns"])
+    for sample, true_c in truth["unknowns"].items():
+        r = results.loc[sample]
+        # Every unknown's true (simulated) concentration lies inside its 95 % interval.
+        assert r["ci_low"] <= true_c <= r["ci_high"], (sample, true_c, dict(r))
+    cal = json.loads((out / "calibration.json").read_text())
+    assert cal["model"]["name"] == "linear"
+    slope = cal["parameters"]["slope"]
+    true_slope = truth["calibration_truth"]["slope"]
+    assert abs(slope / true_slope - 1) < 0.05, (slope, true_slope)
+    # The flawed field recording carries its flags; its overexposed spot is left out.
+    qc = pd.read_csv(out / "qc.csv").set_index("recording")
+    flags = set(qc.loc["card-G", "flags"].split(";"))
+    assert {"saturated", "drifted", "ambient_light"} <= flags
+    for clean in ("card-A", "card-B", "card-E.mp4"):
+        assert not ({"saturated", "drifted", "ambient_light"} & set(
+            str(qc.loc[clean, "flags"]).split(";")))
+    meas = pd.read_csv(out / "measurements.csv")
+    g8 = meas[(meas["recording"] == "card-G") & (meas["spot"] == 8)].iloc[0]
+    assert not g8["used"] and "saturated" in g8["flags"]
