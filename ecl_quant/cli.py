@@ -446,6 +446,12 @@ def _run_measure(args: argparse.Namespace) -> int:
 # --- END COMMANDS ---
 
 
+def _print_err(text: str) -> None:
+    """Print one line on stderr; undecodable file names (surrogates) are escaped."""
+    enc = getattr(sys.stderr, "encoding", None) or "utf-8"
+    print(text.encode(enc, "backslashreplace").decode(enc, "replace"), file=sys.stderr)
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argparse parser with every subcommand."""
     parser = argparse.ArgumentParser(
@@ -475,7 +481,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     def _show_warning(message, category, filename, lineno, file=None, line=None):  # type: ignore[no-untyped-def]
         if not quiet:
-            print(f"warning: {message}", file=sys.stderr)
+            _print_err(f"warning: {message}")
 
     with warnings.catch_warnings():
         warnings.simplefilter("default", EclQuantWarning)
@@ -486,7 +492,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         except EclQuantError as err:
             if debug:
                 traceback.print_exc()
-            print(f"error: {err}", file=sys.stderr)
+            _print_err(f"error: {err}")
             return 2
         except KeyboardInterrupt:
             print("error: interrupted", file=sys.stderr)
