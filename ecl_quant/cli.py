@@ -501,13 +501,13 @@ def main(argv: Sequence[str] | None = None) -> int:
             if debug:
                 traceback.print_exc()
             where = f"{err.filename}: " if err.filename else ""
-            print(f"error: {where}{err.strerror or err}; check the path, its permissions and "
-                  "the free disk space", file=sys.stderr)
+            _print_err(f"error: {where}{err.strerror or err}; check the path, its permissions "
+                       "and the free disk space")
             return 2
         except Exception as err:  # a defect: still one line, the traceback with --debug
             if debug:
                 traceback.print_exc()
             first = (str(err).splitlines() or [""])[0]
-            print(f"error: internal error ({type(err).__name__}: {first}); this is a bug in "
-                  "ecl-quant: rerun with --debug and report the traceback", file=sys.stderr)
+            _print_err(f"error: internal error ({type(err).__name__}: {first}); this is a bug "
+                       "in ecl-quant: rerun with --debug and report the traceback")
             return 3
