@@ -1,0 +1,1 @@
+"""Speed and memory benchmarks (make bench); not part of the installed package."""
