@@ -472,7 +472,24 @@ def _subcommand_probe(argv: Callable[[Path, Path], list[str]]) -> Callable[[Path
 
 
 def _cli_measure(target: Path, folder: Path) -> list[str]:
-    return ["measure", str(target), "--out", str(folder / "out")]
+    return ["measure", str(target), "--out", str(folder / "out"), "--fps", "10", "--quiet"]
+
+
+def _cli_measure_spots(target: Path, folder: Path) -> list[str]:
+    rec = write_png(folder / "card.png")
+    return ["measure", str(rec), "--spots", str(target), "--out", str(folder / "out"),
+            "--quiet"]
+
+
+def _measure_probe(target: Path, folder: Path) -> str:
+    """Measure a recording with one spot given in a file."""
+    from ecl_quant.measure import measure
+
+    spots = _file("spots.json", _spot_doc([_GOOD_SPOT]))(folder)
+    res = measure(target, spots=spots)
+    flags = ";".join(sorted(set(";".join(res.spots_table["flags"]).split(";")) - {""}))
+    return (f"{len(res.curves_table['frame'].unique())} frame(s) measured, spot flags "
+            f"{flags or 'none'}")
 
 
 def _cli_batch(out_name: str) -> Callable[[Path, Path], list[str]]:
@@ -801,22 +818,24 @@ CASES: tuple[BadCase, ...] = (
     BadCase("video-backwards-timestamps", "videos", "MJPEG Matroska with frame times 0, "
             "0.1, 0.2, 0.15, 0.05 s", lambda folder: write_backwards_video(folder / "clip.mkv"),
             read_recording, InputFormatError, _cli_measure),
-    BadCase("video-one-frame", "videos", "H.264 MP4 holding a single frame",
-            _video(1), read_recording, None),
+    BadCase("video-one-frame", "videos", "H.264 MP4 holding a single frame, measured with "
+            "one spot given", _video(1), _measure_probe, None),
     # ---------------------------------------------------------------- spot files
     BadCase("spots-outside-frame", "spot files", "circle at x=100 px in a 32x24 frame",
             _spots("spots.json", _spot_doc([_GOOD_SPOT, {"number": 2, "shape": "circle",
                                                          "x": 100, "y": 10, "radius": 5}])),
-            _spots_probe, SpotError),
+            _spots_probe, SpotError, _cli_measure_spots),
     BadCase("spots-not-json", "spot files", "spots.json holding CSV text",
-            _spots("spots.json", "x,y,r\n16,12,4\n"), _spots_probe, SpotError),
+            _spots("spots.json", "x,y,r\n16,12,4\n"), _spots_probe, SpotError,
+            _cli_measure_spots),
     BadCase("spots-negative-radius", "spot files", "circle with radius -4",
             _spots("spots.json", _spot_doc([{**_GOOD_SPOT, "radius": -4}])), _spots_probe,
-            SpotError),
+            SpotError, _cli_measure_spots),
     BadCase("spots-future-version", "spot files", "spot file of format version 99",
-            _spots("spots.json", _spot_doc([_GOOD_SPOT], version=99)), _spots_probe, SpotError),
+            _spots("spots.json", _spot_doc([_GOOD_SPOT], version=99)), _spots_probe, SpotError,
+            _cli_measure_spots),
     BadCase("spots-zero-byte", "spot files", "0-byte spots.json", _spots("spots.json", ""),
-            _spots_probe, SpotError),
+            _spots_probe, SpotError, _cli_measure_spots),
     # ---------------------------------------------------------------- manifests
     BadCase("manifest-missing-column", "manifests", "no role column",
             _manifest("path,sample,concentration\nblank.png,b,0\nstd1.png,s1,1\n"),
