@@ -57,6 +57,7 @@ from .spots import (
     SpotSet,
     detect_spots,
     drift_plane,
+    isolated_pixels,
     load_spots,
     spots_to_dict,
 )
@@ -352,6 +353,7 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
     from .radiometry import (
         MasterDark,
         channel_values,
+        hot_pixel_map,
         linearize,
         load_dark,
         saturation_mask,
@@ -420,6 +422,7 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
         tracker = new_tracker()
         acc = ProjectionAccumulator(shape)
         base: NDArray[np.float32] | None = None
+        hot_flat: NDArray[np.intp] = np.zeros(0, np.intp)
         with _progress(rec.n_frames, "detect", progress) as bar:
             for frame in rec.frames():
                 if tracker is not None:
@@ -427,10 +430,17 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
                 else:
                     shifts.append((0.0, 0.0, 0.0, False))
                 lin = linear(frame, None)
-                if master is None:
-                    if base is None:
-                        base = lin.copy()
-                    lin -= base
+                if base is None:
+                    # Hot pixels: sensor-fixed and noisy (their shot noise survives any
+                    # dark subtraction); zeroed before registration so that the moving
+                    # max projection does not smear them into spot-like blobs.
+                    hot = isolated_pixels(lin)
+                    if master is not None:
+                        hot |= hot_pixel_map(master)
+                    hot_flat = np.flatnonzero(hot)
+                    base = lin.copy() if master is None else np.zeros_like(lin)
+                lin -= base
+                lin.reshape(-1)[hot_flat] = 0.0
                 dx, dy = shifts[-1][0], shifts[-1][1]
                 acc.add(lin, (int(round(dx)), int(round(dy))))
                 bar.update(1)
@@ -445,6 +455,7 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
             aperture_scale=settings.aperture_scale, aperture_radius_px=settings.aperture_radius_px,
             uniform_radius=settings.uniform_radius)
         detection_info = {"projection": settings.detect_projection,
+                          "hot_pixels_masked": int(hot_flat.size),
                           "projection_dark": "master dark" if master is not None else
                           "first frame (no dark given)", **dict(spot_set.provenance)}
         spot_set = SpotSet(spot_set.spots, shape, spot_set.backgrounds,

@@ -66,6 +66,7 @@ __all__ = [
     "log_blobs",
     "detect_spots",
     "ProjectionAccumulator",
+    "isolated_pixels",
     "drift_plane",
     "downscale_for_drift",
     "estimate_shift",
@@ -613,8 +614,10 @@ def background_surface(image: NDArray[np.floating], *, box_px: int | None = None
     """Smooth background of an image from sigma-clipped tile medians.
 
     The image is cut into ``box_px`` tiles; each tile's median after clipping values
-    beyond ``clip_sigma`` robust SDs is taken, the grid of medians is median-filtered
-    (3 x 3) and interpolated back to full size (bilinear).
+    beyond ``clip_sigma`` robust SDs is taken; tiles that differ from the 3 x 3 median of
+    their neighbours by more than 3 robust SDs (of those differences, or the typical
+    within-tile SD when larger) are replaced by it; the grid is
+    interpolated back to full size (bilinear, extrapolated linearly at the edges).
 
     Parameters
     ----------
@@ -634,6 +637,7 @@ def background_surface(image: NDArray[np.floating], *, box_px: int | None = None
     ys = np.linspace(0, h, ny + 1).astype(int)
     xs = np.linspace(0, w, nx + 1).astype(int)
     grid = np.empty((ny, nx), np.float32)
+    tile_sd = np.zeros((ny, nx), np.float64)
     for a in range(ny):
         for b in range(nx):
             tile = img[ys[a]:ys[a + 1], xs[b]:xs[b + 1]].ravel()
@@ -652,12 +656,41 @@ def background_surface(image: NDArray[np.floating], *, box_px: int | None = None
                 tile = tile[keep]
                 med = np.median(tile)
             grid[a, b] = med
+            tile_sd[a, b] = _MAD_TO_SD * float(np.median(np.abs(tile - med)))
     if np.isnan(grid).all():
         return np.zeros_like(img)
     grid = np.where(np.isnan(grid), np.nanmedian(grid), grid).astype(np.float32)
     if min(ny, nx) >= 3:
-        grid = ndimage.median_filter(grid, size=3, mode="nearest")
-    return cv2.resize(grid, (w, h), interpolation=cv2.INTER_LINEAR)
+        # Tiles dominated by spots stand out from their neighbours: replace only those
+        # (more than 3 robust SDs from the 3 x 3 median), so that smooth gradients
+        # towards the edges are kept.
+        filt = ndimage.median_filter(grid, size=3, mode="nearest")
+        diff = grid - filt
+        spread = max(_robust_sd(diff), float(np.median(tile_sd)))
+        outlier = np.abs(diff) > 3.0 * spread
+        grid = np.where(outlier, filt, grid).astype(np.float32)
+    # Bilinear between tile centres, extrapolated linearly beyond the outer centres (a
+    # glow rising towards a corner keeps rising there instead of levelling off).
+    yc = (ys[:-1] + ys[1:] - 1) / 2.0
+    xc = (xs[:-1] + xs[1:] - 1) / 2.0
+    rows = _interp_extrapolate(np.arange(w, dtype=np.float64), xc, grid.astype(np.float64), axis=1)
+    full = _interp_extrapolate(np.arange(h, dtype=np.float64), yc, rows, axis=0)
+    return full.astype(np.float32)
+
+
+def _interp_extrapolate(x: NDArray[np.float64], xp: NDArray[np.float64], fp: NDArray[np.float64],
+                        axis: int) -> NDArray[np.float64]:
+    """Piecewise-linear interpolation of ``fp`` (sampled at ``xp`` along ``axis``) at ``x``,
+    extended linearly beyond both ends."""
+    f = np.moveaxis(fp, axis, -1)
+    if xp.size == 1:
+        out = np.repeat(f, x.size, axis=-1)
+        return np.moveaxis(out, -1, axis)
+    idx = np.clip(np.searchsorted(xp, x) - 1, 0, xp.size - 2)
+    x0, x1 = xp[idx], xp[idx + 1]
+    t = (x - x0) / (x1 - x0)
+    out = f[..., idx] * (1.0 - t) + f[..., idx + 1] * t
+    return np.moveaxis(out, -1, axis)
 
 
 def _robust_sd(values: NDArray[np.floating]) -> float:
@@ -901,6 +934,18 @@ def detect_spots(projection: NDArray[np.floating], *, method: Literal["threshold
         radii = np.full(len(cands), aperture_scale * float(np.median(half_r)))
     else:
         radii = aperture_scale * half_r
+    # A spot whose aperture leaves the frame cannot be measured: drop it (and say so).
+    inside = [i for i, c in enumerate(cands)
+              if c.x_px - radii[i] >= -0.5 and c.y_px - radii[i] >= -0.5
+              and c.x_px + radii[i] <= w - 0.5 and c.y_px + radii[i] <= h - 0.5]
+    params["n_dropped_at_edge"] = len(cands) - len(inside)
+    cands = [cands[i] for i in inside]
+    half_r, radii = half_r[inside], radii[inside]
+    if not cands:
+        warnings.warn("no spot found: every candidate's aperture runs off the frame edge; "
+                      "frame the card with a margin or give the spots in a file",
+                      NoSpotsWarning, stacklevel=2)
+        return SpotSet((), (h, w), (), {"detection": params, "n_found": 0})
     order, _ = order_row_major([c.x_px for c in cands], [c.y_px for c in cands])
     spots = []
     stats = []
@@ -962,6 +1007,32 @@ class ProjectionAccumulator:
         with np.errstate(invalid="ignore", divide="ignore"):
             mean = self._sum / self._count
         return (mean * self.n_frames).astype(np.float32)
+
+
+def isolated_pixels(image: NDArray[np.floating], *, k_sigma: float = 8.0) -> NDArray[np.bool_]:
+    """Isolated bright pixels (hot pixels): far above the median of their 3 x 3 neighbourhood.
+
+    A pixel is flagged when ``image - median3x3(image)`` exceeds ``k_sigma`` robust SDs
+    (1.4826 MAD) of that difference over the frame. A spot wider than a pixel is not
+    flagged: the median of its neighbourhood is bright too.
+
+    Parameters
+    ----------
+    image : (H, W) ndarray of float
+    k_sigma : float
+
+    Returns
+    -------
+    (H, W) ndarray of bool
+    """
+    img = np.ascontiguousarray(image, dtype=np.float32)
+    if min(img.shape) < 3:
+        return np.zeros(img.shape, bool)
+    resid = img - cv2.medianBlur(img, 3)
+    sd = _robust_sd(resid)
+    if sd <= 0:
+        sd = float(np.std(resid)) or float(np.finfo(np.float32).tiny)
+    return np.asarray(resid > k_sigma * sd)
 
 
 # ---------------------------------------------------------------- drift
