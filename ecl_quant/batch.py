@@ -250,8 +250,13 @@ def confine_path(text: str, folder: Path, *, allow_outside: bool = False,
         links) and ``allow_outside`` is false.
     """
     base = folder.resolve()
+    if "\x00" in text:
+        raise InputFormatError(f"{what} {text!r} contains a NUL character")
     raw = Path(os.path.expanduser(text)) if text.startswith("~") else Path(text)
-    resolved = (raw if raw.is_absolute() else base / raw).resolve()
+    try:
+        resolved = (raw if raw.is_absolute() else base / raw).resolve()
+    except (OSError, RuntimeError, ValueError) as err:
+        raise InputFormatError(f"{what} {text!r} cannot be resolved ({err})") from err
     if not allow_outside and not resolved.is_relative_to(base):
         raise InputFormatError(
             f"{what} {text!r} resolves to {resolved}, outside the manifest's folder {base}; "
@@ -384,8 +389,12 @@ def read_manifest(path: str | Path, *, allow_outside: bool = False,
     reader = csv.reader(text.splitlines())
     header: list[str] | None = None
     records: list[tuple[int, dict[str, str]]] = []
-    for cells in reader:
-        line = reader.line_num
+    try:
+        parsed = [(reader.line_num, cells) for cells in reader]
+    except csv.Error as err:
+        raise ManifestError([f"line {reader.line_num}: not valid CSV ({err})"],
+                            path=mpath) from err
+    for line, cells in parsed:
         if not cells or all(not c.strip() for c in cells) or cells[0].lstrip().startswith("#"):
             continue
         if header is None:
@@ -1023,7 +1032,7 @@ class QCLimits:
         ``low_snr`` for spots of standards above zero and of unknowns below this SNR.
     """
 
-    drift_limit_px: float = 3.0
+    drift_limit_px: float = 2.5
     ambient_limit: float = 0.10
     blur_limit: float = 0.02
     min_snr: float = 5.0
@@ -1516,7 +1525,7 @@ _MEAS_COLUMNS = ["recording", "path", "line", "sample", "role", "concentration",
                  "response", "response_se", "integral", "integral_se", "peak",
                  "time_to_peak_s", "snr", "saturated_frames", "used", "flags"]
 _ERR_COLUMNS = ["recording", "path", "lines", "stage", "error", "message"]
-_QC_COLUMNS = ["recording", "path", "status", "kind", "n_frames", "n_spots", "max_drift_px",
+_QC_COLUMNS = ["recording", "path", "kind", "n_frames", "n_spots", "max_drift_px",
                "blur_score", "ambient_fraction", "min_snr", "saturated_spots", "flags"]
 _RESULT_COLUMNS = ["sample", "n", "response_mean", "concentration", "se", "ci_low", "ci_high",
                    "level", "units", "recordings", "flags"]
@@ -1643,8 +1652,7 @@ def _assemble(man: Manifest, outcomes: Sequence[RecordingOutcome], rec_root: Pat
                     "used": used, "flags": _join_flags(own, rec_flags),
                 })
         qc_rows.append({
-            "recording": rec.rec_id, "path": rec.path_text, "status": o.status,
-            "kind": metrics.get("kind"), "n_frames": metrics.get("n_frames"),
+            "recording": rec.rec_id, "path": rec.path_text, "kind": metrics.get("kind"), "n_frames": metrics.get("n_frames"),
             "n_spots": len(available), "max_drift_px": metrics.get("max_drift_px"),
             "blur_score": metrics.get("blur_score"),
             "ambient_fraction": metrics.get("ambient_fraction"),

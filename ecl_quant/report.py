@@ -315,7 +315,7 @@ def _section_qc(qc: Any) -> str:
     rows = _records(qc)
     cols = [("recording", "recording"), ("kind", "kind"), ("n_frames", "frames"),
             ("n_spots", "spots"), ("max_drift_px", "max drift (px)"),
-            ("blur_score", "sharpness (var. Laplacian)"), ("ambient_fraction", "ambient"),
+            ("blur_score", "sharpness"), ("ambient_fraction", "ambient"),
             ("min_snr", "min SNR"), ("saturated_spots", "saturated spots"),
             ("flags", "flags")]
     numeric = ("n_frames", "n_spots", "max_drift_px", "blur_score", "ambient_fraction",

@@ -210,7 +210,7 @@ Run the whole pipeline on it with `make demo`.
 """
 
 
-def simulate_scenario(out_dir: str | Path, *, seed: int = 7, overwrite: bool = True,
+def simulate_scenario(out_dir: str | Path, *, seed: int = 5, overwrite: bool = True,
                       ) -> dict[str, Any]:
     """Write the demo scenario (recordings, manifest.csv, truth.json, README.md).
 

@@ -334,9 +334,11 @@ def _tiny(path: Path, conc: float, seed: int, encoding: str) -> None:
 
 
 def _manifest(rows, path: Path) -> Path:
-    lines = ["path,sample,role,concentration"]
+    # Video frames carry no exposure time; the simulator's is 1/30 s (its default).
+    lines = ["path,sample,role,concentration,exposure_s"]
     for p, sample, role, conc, *_ in rows:
-        lines.append(f"{p},{sample},{role},{'' if conc is None else f'{conc:g}'}")
+        lines.append(f"{p},{sample},{role},{'' if conc is None else f'{conc:g}'},"
+                     f"{'1/30' if p.endswith('.mp4') else ''}")
     path.write_text("\n".join(lines) + "\n")
     return path
 
@@ -509,7 +511,8 @@ def test_bad_manifest_stops_before_any_work(study, tmp_path, capsys):
     assert main(["batch", str(m), "--out", str(out)]) == 2
     err = capsys.readouterr().err
     assert "3 problems in the manifest" in err
-    assert "line 2" in err and "line 3" in err and "two different concentrations" in err
+    assert "line 2: recording 'nope.mp4' not found" in err
+    assert "line 3: recording 'x' not found" in err and "line 3: role 'unknwn'" in err
     assert not out.exists()
 
 
