@@ -880,7 +880,8 @@ def _open_container(path: Path) -> Any:
     import av
 
     try:
-        container = av.open(str(path), mode="r")
+        # Tags are provenance only: undecodable bytes in them must not reject the video.
+        container = av.open(str(path), mode="r", metadata_errors="replace")
     except av.FFmpegError as err:
         raise InputFormatError(
             f"not a readable video ({err.__class__.__name__}: {err.strerror or err}); "
