@@ -1038,6 +1038,11 @@ def _cand_entry(c: _Candidate) -> dict[str, Any]:
             "s_yx": float(np.sqrt(c.fit.s2))}
 
 
+#: Largest |concentration| or |response| accepted: squares and sums of squares of the
+#: data (up to x**4 in the quadratic normal equations) must stay finite in float64.
+_MAX_MAGNITUDE = 1e75
+
+
 def _calibrate(x: FloatArray, y: FloatArray, role: NDArray[np.str_], y_se: FloatArray, *,
                model: str, weights: Any, level: float, units: str, response_units: str,
                options: CalibrationOptions | None, path: str | Path | None,
@@ -1053,6 +1058,14 @@ def _calibrate(x: FloatArray, y: FloatArray, role: NDArray[np.str_], y_se: Float
         i = int(np.flatnonzero(x < 0)[0])
         raise CalibrationError(f"negative concentration {x[i]:g} at reading {i + 1}; "
                                "concentrations must be >= 0", path=path)
+    for name, vals in (("concentration", x), ("response", y)):
+        finite = vals[np.isfinite(vals)]
+        # Sums of squares of such values overflow double precision (about 1.8e308).
+        if finite.size and float(np.max(np.abs(finite))) > _MAX_MAGNITUDE:
+            raise CalibrationError(
+                f"{name} values reach {float(np.max(np.abs(finite))):.3g}, too large to fit "
+                f"in double precision (limit {_MAX_MAGNITUDE:g}); express them in larger "
+                "units", path=path)
     if model_key == "wls" and (weights is None or (isinstance(weights, str)
                                                     and weights.lower() == "none")):
         raise CalibrationError("model wls needs weights (1/x2, 1/y2 or 1/var)", path=path)
