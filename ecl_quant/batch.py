@@ -1124,7 +1124,13 @@ class BatchSettings:
             raise InputFormatError(f"--level {self.level:g}: give a level in [0.5, 1), e.g. 0.95")
         if self.channel not in CHANNELS:
             raise InputFormatError(f"--channel {self.channel!r}: use one of {', '.join(CHANNELS)}")
-        parse_transfer(self.transfer)
+        spec = parse_transfer(self.transfer)
+        if spec.kind == "profile":  # relative to the working folder; made absolute here
+            prof = Path(spec.profile_path or "").expanduser().resolve()
+            if not prof.is_file():
+                raise InputFormatError("device profile not found; check the --transfer "
+                                       "profile= path", path=prof)
+            object.__setattr__(self, "transfer", f"profile={prof}")
         if self.workers is not None and self.workers < 1:
             raise InputFormatError(f"--workers {self.workers}: give 1 or more")
 
