@@ -14,6 +14,7 @@ practice in file-format fuzzing.
 
 from __future__ import annotations
 
+import functools
 import json
 import os
 import shutil
@@ -99,20 +100,35 @@ def _png_with_header(width: int, height: int, depth: int, colour: int) -> bytes:
     return b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", ihdr) + chunk(b"IDAT", raw) + chunk(b"IEND", b"")
 
 
-@pytest.fixture(scope="module")
-def seeds(scratch):
-    """Valid tiny files of every kind the readers take, as bytes."""
+@functools.lru_cache(maxsize=1)
+def _seed_bytes() -> dict[str, bytes]:
+    """Valid tiny files of every kind the readers take, as bytes (built once)."""
     import tifffile
 
-    d = scratch / "seeds"
-    d.mkdir()
-    bc.write_png(d / "a.png")
-    bc.write_png(d / "b.png", bc._gradient(dtype=np.uint16))
-    bc.write_jpeg(d / "c.jpg")
-    tifffile.imwrite(d / "d.tif", bc._gradient(dtype=np.uint16), photometric="rgb")
-    bc.write_video(d / "e.mp4", 5)
-    bc.write_video(d / "f.mkv", 5, fmt="matroska", codec="mjpeg")
-    return {p.name: p.read_bytes() for p in sorted(d.iterdir())}
+    with tempfile.TemporaryDirectory(prefix="ecl-fuzz-seeds-") as tmp:
+        d = Path(tmp)
+        bc.write_png(d / "a.png")
+        bc.write_png(d / "b.png", bc._gradient(dtype=np.uint16))
+        bc.write_jpeg(d / "c.jpg")
+        tifffile.imwrite(d / "d.tif", bc._gradient(dtype=np.uint16), photometric="rgb")
+        bc.write_video(d / "e.mp4", 5)
+        bc.write_video(d / "f.mkv", 5, fmt="matroska", codec="mjpeg")
+        return {p.name: p.read_bytes() for p in sorted(d.iterdir())}
+
+
+class _Seeds:
+    """Fixture value with a short repr (Hypothesis prints the arguments of a failure)."""
+
+    def __getitem__(self, name: str) -> bytes:
+        return _seed_bytes()[name]
+
+    def __repr__(self) -> str:
+        return "<seed files>"
+
+
+@pytest.fixture(scope="module")
+def seeds():
+    return _Seeds()
 
 
 def _read(path: Path) -> None:
@@ -126,21 +142,29 @@ def _read(path: Path) -> None:
 # ------------------------------------------------------------------ images and videos
 
 
+_IMAGE_SEEDS = ("a.png", "b.png", "c.jpg", "d.tif")
+# Believable PNG headers: any size, depth and colour type, with valid CRCs.
+_PNG_HEADERS = st.builds(_png_with_header, st.integers(0, 2**31 - 1), st.integers(0, 2**31 - 1),
+                         st.sampled_from([1, 2, 4, 8, 16, 3, 0]),
+                         st.sampled_from([0, 2, 3, 4, 6, 5]))
+
+
+def _blob(seed_names, random_size: int):
+    """(seed name or None, edits, random bytes): a mutated seed or random bytes."""
+    return st.one_of(st.tuples(st.sampled_from(seed_names), mutations(), st.just(b"")),
+                     st.tuples(st.none(), st.just([]), st.binary(max_size=random_size)))
+
+
+def _bytes_of(seeds, choice) -> bytes:
+    name, ops, raw = choice
+    return raw if name is None else mutate(seeds[name], ops)
+
+
 @FUZZ
-@given(data=st.data())
-def test_image_reader_takes_any_bytes(seeds, scratch, data):
-    images = [k for k in seeds if k.endswith((".png", ".jpg", ".tif"))]
-    source = data.draw(st.sampled_from(images + ["random", "png-header"]))
-    if source == "random":
-        blob = data.draw(st.binary(max_size=2048))
-    elif source == "png-header":  # believable headers: sizes, depths, colour types
-        blob = _png_with_header(data.draw(st.integers(0, 2**31 - 1)),
-                                data.draw(st.integers(0, 2**31 - 1)),
-                                data.draw(st.sampled_from([1, 2, 4, 8, 16, 3, 0])),
-                                data.draw(st.sampled_from([0, 2, 3, 4, 6, 5])))
-    else:
-        blob = mutate(seeds[source], data.draw(mutations()))
-    suffix = data.draw(st.sampled_from([".png", ".jpg", ".jpeg", ".tif", ".tiff", ".dng"]))
+@given(choice=_blob(_IMAGE_SEEDS, 2048), header=st.none() | _PNG_HEADERS,
+       suffix=st.sampled_from([".png", ".jpg", ".jpeg", ".tif", ".tiff", ".dng"]))
+def test_image_reader_takes_any_bytes(seeds, scratch, choice, header, suffix):
+    blob = header if header is not None else _bytes_of(seeds, choice)
     path = scratch / f"fuzz{suffix}"
     path.write_bytes(blob)
     only_typed_errors(lambda: _read(path))
@@ -149,7 +173,7 @@ def test_image_reader_takes_any_bytes(seeds, scratch, data):
 @FUZZ
 @given(data=st.data())
 def test_image_folder_of_damaged_and_mixed_files(seeds, scratch, data):
-    images = [k for k in seeds if k.endswith((".png", ".jpg", ".tif"))]
+    images = list(_IMAGE_SEEDS)
     folder = scratch / "folder"
     shutil.rmtree(folder, ignore_errors=True)
     folder.mkdir()
@@ -161,16 +185,11 @@ def test_image_folder_of_damaged_and_mixed_files(seeds, scratch, data):
 
 
 @FUZZ
-@given(data=st.data())
-def test_video_reader_takes_mutated_videos(seeds, scratch, data):
-    source = data.draw(st.sampled_from(["e.mp4", "f.mkv", "random"]))
-    if source == "random":
-        blob = data.draw(st.binary(max_size=4096))
-    else:
-        blob = mutate(seeds[source], data.draw(mutations()))
-    suffix = data.draw(st.sampled_from([".mp4", ".mkv", ".mov", ".avi"]))
+@given(choice=_blob(("e.mp4", "f.mkv"), 4096),
+       suffix=st.sampled_from([".mp4", ".mkv", ".mov", ".avi"]))
+def test_video_reader_takes_mutated_videos(seeds, scratch, choice, suffix):
     path = scratch / f"fuzz{suffix}"
-    path.write_bytes(blob)
+    path.write_bytes(_bytes_of(seeds, choice))
     only_typed_errors(lambda: _read(path))
 
 
