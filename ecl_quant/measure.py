@@ -691,6 +691,9 @@ def _jsonable(obj: Any) -> Any:
 def check_output_dir(out_dir: str | Path, *, force: bool = False) -> Path:
     """Refuse an existing non-empty folder unless ``force``; a file is always refused.
 
+    A folder holding only some of the measure outputs and no ``run.json`` (written last)
+    is a run that was interrupted; it is completed without ``force``.
+
     Raises
     ------
     OutputError
@@ -698,9 +701,13 @@ def check_output_dir(out_dir: str | Path, *, force: bool = False) -> Path:
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise OutputError("exists and is not a folder; choose another --out", path=out)
-    if out.is_dir() and any(p for p in out.iterdir() if not p.name.startswith(".")) and not force:
-        raise OutputError("folder is not empty; pass --force to overwrite its files or "
-                          "choose another --out", path=out)
+    if out.is_dir() and not force:
+        visible = [p for p in out.iterdir() if not p.name.startswith(".")]
+        interrupted = not (out / "run.json").exists() and all(
+            p.name in OUTPUT_FILES and p.is_file() for p in visible)
+        if visible and not interrupted:
+            raise OutputError("folder is not empty; pass --force to overwrite its files or "
+                              "choose another --out", path=out)
     return out
 
 
@@ -841,8 +848,14 @@ def write_measure_outputs(result: MeasureResult, out_dir: str | Path, *,
     run["written_utc"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
     contents["run.json"] = (json.dumps(_jsonable(run), indent=2) + "\n").encode()
     ensure_dir(out)
+    # run.json goes last and is removed first: without it the folder is an unfinished run
+    # (a process killed mid-way leaves no mix of two runs that looks complete).
+    (out / "run.json").unlink(missing_ok=True)
+    for stale in out.glob(".*.tmp"):  # temporary files of a writer that was killed
+        if any(stale.name.startswith(f".{name}.") for name in OUTPUT_FILES):
+            stale.unlink(missing_ok=True)
     written = []
-    for name in OUTPUT_FILES:
+    for name in sorted(OUTPUT_FILES, key=lambda n: n == "run.json"):
         with atomic_write(out / name, "wb") as fh:
             fh.write(contents[name])
         written.append(out / name)
