@@ -1,0 +1,316 @@
+"""Figures of merit and the streaming integrator.
+
+Outside references named beside each check: scipy.integrate.trapezoid and
+scipy.signal.savgol_filter (reference library), the Gaussian FWHM = 2 sqrt(2 ln 2) sigma
+(textbook), EMVA 1288 Release 4.0 eq. (15) (variance = read + signal / gain), numpy
+Monte Carlo for standard errors, the simulator's closed-form pulse (ecl_quant.simulate).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy.integrate import trapezoid
+from scipy.signal import savgol_filter
+
+from ecl_quant.curves import (
+    CurveSettings,
+    NoiseModel,
+    SpotIntegrator,
+    crossing_width,
+    curve_metrics,
+    estimate_noise_model,
+    integrate_curve,
+    locate_peak,
+    onset_time,
+    smooth_curve,
+    trapezoid_weights,
+)
+from ecl_quant.errors import SpotError
+from ecl_quant.simulate import ecl_pulse, ecl_pulse_antiderivative, ecl_pulse_peak_delay
+from ecl_quant.spots import BackgroundRegion, SpotSet, make_spot
+
+
+def _vfr_times(n, fps=30.0, seed=0):
+    rng = np.random.default_rng(seed)
+    t = np.concatenate([[0.0], np.cumsum(rng.uniform(0.6, 1.4, n - 1) / fps)])
+    return t
+
+
+# ------------------------------------------------------------------ integral
+
+
+def test_trapezoid_weights_match_scipy():
+    # Reference library: scipy.integrate.trapezoid on non-uniform times.
+    t = _vfr_times(57, seed=1)
+    y = np.random.default_rng(2).normal(size=57)
+    assert np.dot(trapezoid_weights(t), y) == pytest.approx(trapezoid(y, t), rel=1e-12)
+    assert trapezoid_weights([0.0]).tolist() == [0.0]
+
+
+def test_integrate_curve_matches_scipy_and_truth():
+    t = _vfr_times(300, seed=3)
+    pulse = ecl_pulse(t, onset_s=2.0, rise_s=0.25, decay_s=0.9)
+    y = 5.0 + 40.0 * pulse  # constant baseline of 5
+    base = t < 1.8
+    integral, se, b = integrate_curve(t, y, np.ones_like(y), base)
+    assert b == pytest.approx(5.0)
+    assert integral == pytest.approx(trapezoid(y - 5.0, t), rel=1e-12)
+    # The closed-form integral of the simulator's pulse over the span, to trapezoid error.
+    exact = 40.0 * (ecl_pulse_antiderivative(t[-1], onset_s=2.0, rise_s=0.25, decay_s=0.9)
+                    - ecl_pulse_antiderivative(t[0], onset_s=2.0, rise_s=0.25, decay_s=0.9))
+    assert integral == pytest.approx(float(exact), rel=2e-3)
+
+
+def test_integral_se_includes_the_shared_baseline():
+    # Monte Carlo (numpy): the SD of the baseline-corrected integral over many noisy
+    # curves equals the reported SE, which is larger than the naive sqrt(sum c^2 se^2)
+    # because every frame shares the baseline estimate.
+    rng = np.random.default_rng(4)
+    t = _vfr_times(200, seed=5)
+    truth = 30.0 * ecl_pulse(t, onset_s=1.5, rise_s=0.2, decay_s=1.0)
+    se = 0.5 + 0.02 * truth
+    base = t < 1.4
+    draws = np.array([integrate_curve(t, truth + rng.normal(0, se), se, base)[0]
+                      for _ in range(4000)])
+    _, reported, _ = integrate_curve(t, truth, se, base)
+    assert draws.std(ddof=1) == pytest.approx(reported, rel=0.05)
+    naive = math.sqrt(np.sum(trapezoid_weights(t) ** 2 * se**2))
+    assert reported > 1.5 * naive
+
+
+# ------------------------------------------------------------------ smoothing, peak
+
+
+@pytest.mark.parametrize("n, window, order", [(80, 9, 2), (80, 15, 3), (40, 21, 4), (9, 9, 2)])
+def test_smooth_curve_matches_scipy_savgol(n, window, order):
+    y = np.random.default_rng(n).normal(size=n)
+    np.testing.assert_allclose(smooth_curve(y, window=window, order=order),
+                               savgol_filter(y, window, order, mode="interp"), atol=1e-10)
+
+
+def test_smooth_curve_short_input_unchanged():
+    np.testing.assert_array_equal(smooth_curve([1.0, 2.0, 3.0], window=9, order=2), [1, 2, 3])
+
+
+@pytest.mark.parametrize("rise, decay", [(0.25, 0.9), (0.5, 1.0), (0.05, 0.5)])
+def test_peak_time_on_noiseless_pulse(rise, decay):
+    # Truth: the pulse's analytic maximum (ecl_pulse_peak_delay) on VFR timestamps.
+    t = _vfr_times(240, seed=6)
+    y = 100.0 * ecl_pulse(t, onset_s=1.0, rise_s=rise, decay_s=decay)
+    sm = smooth_curve(y, window=5, order=2)
+    tp, vp, tse, vse = locate_peak(t, y, np.full_like(y, 0.01), smoothed=sm)
+    assert tp == pytest.approx(1.0 + ecl_pulse_peak_delay(rise, decay), abs=0.2 / 30)
+    assert vp == pytest.approx(100.0, rel=5e-3)
+
+
+def test_peak_time_error_is_within_a_frame_and_its_se_honest():
+    rng = np.random.default_rng(7)
+    truth = 1.0 + ecl_pulse_peak_delay(0.25, 0.9)
+    err, z = [], []
+    for k in range(150):
+        t = _vfr_times(200, seed=100 + k)
+        y = 100.0 * ecl_pulse(t, onset_s=1.0, rise_s=0.25, decay_s=0.9) + rng.normal(0, 1, t.size)
+        m = curve_metrics(t, y, np.ones_like(y))
+        err.append(m.time_to_peak_s - truth)
+        z.append((m.time_to_peak_s - truth) / m.time_to_peak_se_s)
+    err, z = np.array(err), np.array(z)
+    assert np.abs(err).max() < 1.0 / 30  # one nominal frame interval
+    assert 0.7 < z.std() < 1.3
+
+
+def test_onset_time_interpolates_the_crossing():
+    t = np.arange(20) * 0.1
+    y = np.where(t < 1.0, 0.0, (t - 1.0) * 10.0)  # ramp from 1.0 s, slope 10 per s
+    assert onset_time(t, y, 2.5, min_frames=3) == pytest.approx(1.25)
+    spike = np.zeros(20)
+    spike[5] = 10.0
+    assert math.isnan(onset_time(t, spike, 1.0, min_frames=3))
+    assert onset_time(t, np.full(20, 5.0), 1.0) == 0.0
+
+
+def test_crossing_width_gives_the_gaussian_fwhm():
+    # Textbook: FWHM of a Gaussian = 2 sqrt(2 ln 2) sigma.
+    t = np.linspace(0, 10, 2001)
+    sigma = 0.7
+    y = np.exp(-((t - 5.0) ** 2) / (2 * sigma**2))
+    left, right = crossing_width(t, y, 0.5, int(np.argmax(y)))
+    assert right - left == pytest.approx(2 * math.sqrt(2 * math.log(2)) * sigma, rel=1e-5)
+    left, right = crossing_width(t, y, 0.5, 0)
+    assert math.isnan(left)
+
+
+# ------------------------------------------------------------------ curve metrics
+
+
+def _pulse_curve(seed=0, amp=50.0, noise=0.5, n=240):
+    rng = np.random.default_rng(seed)
+    t = _vfr_times(n, seed=seed)
+    y = 2.0 + amp * ecl_pulse(t, onset_s=2.0, rise_s=0.25, decay_s=0.9) + rng.normal(0, noise, n)
+    return t, y, np.full(n, noise)
+
+
+def test_curve_metrics_of_a_clean_pulse():
+    t, y, se = _pulse_curve()
+    m = curve_metrics(t, y, se, settings=CurveSettings(baseline_end_s=1.9))
+    assert m.baseline == pytest.approx(2.0, abs=0.2)
+    assert m.peak == pytest.approx(50.0, rel=0.03)
+    assert m.onset_s == pytest.approx(2.0, abs=0.1)
+    assert m.fwhm_s > 0 and m.time_above_s > m.fwhm_s
+    assert m.flags == ()
+    assert m.snr == pytest.approx(m.integral / m.integral_se)
+    assert 0.6 < m.noise_ratio < 1.5
+    # Automatic baseline: the first 5 %, refined to the frames before the onset.
+    auto = curve_metrics(t, y, se)
+    assert auto.baseline_frames > 30 and auto.integral == pytest.approx(m.integral, rel=0.02)
+
+
+def test_saturated_frames_make_the_integral_invalid():
+    t, y, se = _pulse_curve(seed=1)
+    sat = np.zeros(t.size, int)
+    sat[80:84] = 3
+    m = curve_metrics(t, y, se, saturated_px=sat)
+    assert "saturated" in m.flags and m.saturated_frames == 4
+    assert math.isnan(m.integral) and math.isnan(m.integral_se) and math.isnan(m.peak)
+    assert math.isfinite(m.integral_raw) and math.isfinite(m.peak_raw)
+
+
+def test_blank_curve_is_valid_but_flagged_no_pulse():
+    rng = np.random.default_rng(2)
+    t = _vfr_times(150, seed=2)
+    y = rng.normal(0, 1, t.size)
+    m = curve_metrics(t, y, np.ones_like(y))
+    assert "no_pulse" in m.flags and "low_snr" in m.flags
+    assert math.isfinite(m.integral) and abs(m.integral) < 4 * m.integral_se
+    assert math.isnan(m.onset_s) and math.isnan(m.time_above_s)
+
+
+def test_curve_metrics_empty_and_mismatched():
+    m = curve_metrics([], [], [])
+    assert m.flags == ("no_pulse",) and math.isnan(m.integral)
+    with pytest.raises(SpotError):
+        curve_metrics([0, 1], [1, 2, 3], [1, 1])
+
+
+# ------------------------------------------------------------------ noise model
+
+
+def test_noise_model_recovers_read_noise_and_gain():
+    # EMVA 1288 eq. (15): variance = read variance + signal / gain; observations are
+    # sample variances of n pixels (chi-square scatter) at many levels, a few outliers.
+    rng = np.random.default_rng(8)
+    read_var, gain = 4e-6, 2500.0
+    level = rng.uniform(0.01, 0.6, 400)
+    n = np.full(400, 300.0)
+    true = read_var + level / gain
+    obs = true * rng.chisquare(n - 1) / (n - 1)
+    obs[:5] *= 20.0
+    model = estimate_noise_model(level, obs, n)
+    assert model.gain == pytest.approx(gain, rel=0.03)
+    assert model.read_var == pytest.approx(read_var, abs=2e-6)
+    assert model.source.startswith("estimated")
+
+
+def test_noise_model_without_level_range_keeps_the_mean():
+    level = np.full(50, 0.05)
+    var = np.full(50, 2e-5)
+    model = estimate_noise_model(level, var, np.full(50, 100.0))
+    assert math.isinf(model.gain) and model.read_var == pytest.approx(2e-5)
+    assert model.slope == 0.0
+    assert estimate_noise_model([], [], []).n_points == 0
+
+
+# ------------------------------------------------------------------ integrator
+
+
+def _disc_frame(shape, centre, radius, flux, background, rng=None, noise=0.0):
+    h, w = shape
+    yy, xx = np.mgrid[0:h, 0:w]
+    disc = (np.hypot(xx - centre[0], yy - centre[1]) <= radius).astype(np.float64)
+    img = background + flux * disc / disc.sum()
+    if rng is not None:
+        img = img + rng.normal(0, noise, shape)
+    return img.astype(np.float32)
+
+
+@pytest.mark.parametrize("estimator", ["mean", "median"])
+def test_integrator_recovers_a_known_disc_on_a_flat_background(estimator):
+    # A disc of known flux (sum of pixel values) on a known flat level: the net signal is
+    # the flux exactly when the aperture covers the disc (common practice of aperture
+    # photometry: background = level per pixel x area).
+    shape = (60, 80)
+    ss = SpotSet((make_spot(1, "circle", (30.0, 28.0, 9.0)), make_spot(2, "circle", (55.0, 30.0, 7.0))))
+    integ = SpotIntegrator(ss, shape, pad_px=4, estimator=estimator)
+    fluxes = [0.0, 10.0, 25.0]
+    for i, f in enumerate(fluxes):
+        frame = _disc_frame(shape, (30.0, 28.0), 5.0, f, 0.02)
+        crop = frame[integ.region].copy()
+        before = crop.copy()
+        integ.add(crop, time_s=0.1 * i, shift_px=(0.0, 0.0))
+        np.testing.assert_array_equal(crop, before)
+    sig = integ.signals(NoiseModel(1e-6, 4000.0, "given"))
+    np.testing.assert_allclose(sig["signal"][:, 0], fluxes, atol=1e-4)
+    np.testing.assert_allclose(sig["signal"][:, 1], 0.0, atol=1e-4)
+    np.testing.assert_allclose(sig["background"], 0.02, atol=1e-6)
+
+
+def test_integrator_follows_a_whole_pixel_shift():
+    shape = (60, 80)
+    ss = SpotSet((make_spot(1, "circle", (40.0, 30.0, 8.0)),))
+    integ = SpotIntegrator(ss, shape, pad_px=6)
+    for dx, dy in [(0, 0), (4, -3), (-5, 2)]:
+        frame = _disc_frame(shape, (40.0 + dx, 30.0 + dy), 5.0, 12.0, 0.01)
+        integ.add(frame[integ.region], time_s=0.0, shift_px=(dx + 0.2, dy - 0.3))
+    sig = integ.signals(NoiseModel(0.0, math.inf, "given"))
+    np.testing.assert_allclose(sig["signal"][:, 0], 12.0, atol=1e-4)
+    assert integ.clip_shift(50.0, 0.0)[2] is True
+
+
+def test_integrator_se_matches_monte_carlo():
+    # Per-frame SE from the variance model (read + shot, EMVA 1288 eq. 15) and the
+    # background error, against the scatter of the net signal over noisy frames (numpy).
+    rng = np.random.default_rng(9)
+    shape = (50, 60)
+    read_var, gain = 1e-4, 200.0
+    ss = SpotSet((make_spot(1, "circle", (30.0, 25.0, 6.0)),))
+    integ = SpotIntegrator(ss, shape, pad_px=2)
+    clean = _disc_frame(shape, (30.0, 25.0), 5.0, 20.0, 0.05)
+    for i in range(600):
+        frame = clean + rng.normal(0, 1, shape) * np.sqrt(read_var + clean / gain)
+        integ.add(frame.astype(np.float32)[integ.region], time_s=i / 30)
+    sig = integ.signals(NoiseModel(read_var, gain, "given"))
+    assert sig["signal"][:, 0].std(ddof=1) == pytest.approx(np.median(sig["signal_se"][:, 0]),
+                                                            rel=0.1)
+    # The recording's own second differences recover the model (EMVA 1288 eq. 15).
+    est = estimate_noise_model(*integ.noise_observations())
+    assert est.read_var + 0.05 / est.gain == pytest.approx(read_var + 0.05 / gain, rel=0.05)
+
+
+def test_integrator_counts_saturated_pixels_and_uses_regions():
+    shape = (40, 60)
+    ss = SpotSet((make_spot(1, "circle", (20.0, 20.0, 5.0)), make_spot(2, "rect", (38, 14, 48, 26))),
+                 backgrounds=(BackgroundRegion("rect", (-0.5, -0.5, 59.5, 5.5)),))
+    integ = SpotIntegrator(ss, shape, pad_px=0)
+    frame = np.full(shape, 0.1, np.float32)
+    sat = np.zeros(shape, bool)
+    sat[20, 20] = sat[19, 20] = True
+    sat[20, 43] = True
+    region = integ.region
+    integ.add(frame[region], time_s=0.0, saturated_crop=sat[region])
+    s = integ.signals(NoiseModel(0.0, math.inf, "given"))
+    assert s["saturated_px"][0].tolist() == [2, 1]
+    np.testing.assert_allclose(s["signal"][0], 0.0, atol=1e-5)
+    assert integ.geometry.bg_n.tolist() == [360, 360]
+
+
+def test_integrator_rejects_bad_geometry():
+    with pytest.raises(SpotError, match="outside|not inside"):
+        SpotIntegrator(SpotSet((make_spot(1, "circle", (2.0, 20.0, 5.0)),)), (40, 60))
+    with pytest.raises(SpotError):
+        SpotIntegrator(SpotSet(()), (40, 60))
+    tight = SpotSet((make_spot(1, "circle", (10.0, 10.0, 9.0)),))
+    with pytest.raises(SpotError, match="background annulus of spot 1"):
+        SpotIntegrator(tight, (20, 20), annulus_inner=1.05, annulus_outer=1.06,
+                       annulus_min_px=200)
