@@ -324,12 +324,13 @@ _GOOD = [  # (path, sample, role, concentration, true concentration, encoding)
 _OUTPUTS = ("measurements.csv", "results.csv", "qc.csv", "errors.csv")
 
 
-def _tiny(path: Path, conc: float, seed: int, encoding: str) -> None:
+def _tiny(path: Path, conc: float, seed: int, encoding: str, **flaws) -> None:
     amp = 0.01 + 0.02 * conc
-    spec = SimulationSpec(size=(72, 96), n_rows=1, n_cols=3, radius_px=6.0, spacing_px=24.0,
+    opts = {"size": (72, 96), **flaws}
+    spec = SimulationSpec(n_rows=1, n_cols=3, radius_px=6.0, spacing_px=24.0,
                           amplitudes=(amp, amp, amp), n_frames=25, fps=8.0, onset_s=0.4,
                           rise_s=0.3, decay_s=0.8, drift_px=0.3, n_hot_pixels=1,
-                          encoding=encoding, crf=12, seed=seed)
+                          encoding=encoding, crf=12, seed=seed, **opts)
     simulate_recording(path, spec)
 
 
@@ -523,6 +524,44 @@ def test_foreign_output_folder_needs_force(study, tmp_path):
     with pytest.raises(OutputError, match="not from a batch"):
         run_batch(study["good"], BatchSettings(out_dir=out, workers=1, progress=False))
     assert (out / "thesis.docx").exists()
+
+
+def test_field_qc_flags(tmp_path):
+    # Each flaw is made by the simulator with a known cause (ground truth), one per card.
+    root = tmp_path / "field"
+    root.mkdir()
+    cards = [("s0", "S0", "standard", 0.0, 0.0, {}),
+             ("s10", "S10", "standard", 10.0, 10.0, {}),
+             ("s20", "S20", "standard", 20.0, 20.0, {}),
+             ("sharp", "SHARP", "unknown", None, 10.0, {}),
+             ("defocused", "BLUR", "unknown", None, 10.0, {"edge_px": 2.2, "size": (112, 192)}),
+             ("autoexp", "AE", "unknown", None, 10.0, {"exposure_change": (12, 1 / 60)}),
+             ("roomlight", "AMB", "unknown", None, 10.0, {"ambient_fs": 0.4}),
+             ("empty", "ZERO", "unknown", None, 0.0, {}),
+             ("strong", "HIGH", "unknown", None, 30.0, {})]
+    for k, (p, *_rest, true, flaws) in enumerate(cards):
+        _tiny(root / p, true, 700 + k, "jpeg", **flaws)
+    m = _manifest([c[:4] for c in cards], root / "m.csv")
+    res = run_batch(m, BatchSettings(out_dir=tmp_path / "out", workers=2, progress=False))
+    assert res.exit_code == 0, res.errors
+    qc = res.qc.set_index("recording")
+    flags = {r: set(str(f).split(";")) - {"", "nan"} for r, f in qc["flags"].items()}
+    assert "blurred" in flags["defocused"] and "blurred" not in flags["sharp"]
+    assert qc.loc["defocused", "blur_score"] < 0.010 < qc.loc["sharp", "blur_score"]
+    assert "exposure_changed" in flags["autoexp"]
+    assert "ambient_light" in flags["roomlight"]
+    assert qc.loc["roomlight", "ambient_fraction"] > 0.1 > qc.loc["sharp", "ambient_fraction"]
+    assert "below_lod" in flags["empty"] and "above_range" in flags["strong"]
+    assert flags["sharp"] == set()
+    results = res.results.set_index("sample")
+    assert "below_lod" in results.loc["ZERO", "flags"]
+    assert "above_range" in results.loc["HIGH", "flags"]
+    assert "blurred" in results.loc["BLUR", "flags"]
+    # Every flag written is explained in the report's glossary.
+    from ecl_quant.batch import QC_FLAGS, RESULT_FLAGS
+
+    for words in flags.values():
+        assert words <= set(QC_FLAGS) | set(RESULT_FLAGS)
 
 
 # ------------------------------------------------------------------ the demo
