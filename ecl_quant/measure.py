@@ -85,7 +85,7 @@ SPOTS_COLUMNS = (
     "background_px", "annulus_inner_px", "annulus_outer_px")
 #: Columns of curves.csv.
 CURVES_COLUMNS = ("spot", "frame", "time_s", "signal", "signal_se", "background",
-                  "saturated_px", "shift_x_px", "shift_y_px")
+                  "saturated_px", "shift_x_px", "shift_y_px", "drifted")
 OUTPUT_FILES = ("spots.csv", "curves.csv", "spots.json", "run.json", "overlay.png", "curves.png")
 
 
@@ -231,7 +231,8 @@ class MeasureResult:
     spots_table : DataFrame
         One row per spot (:data:`SPOTS_COLUMNS`).
     curves_table : DataFrame
-        Long table, one row per spot and frame (:data:`CURVES_COLUMNS`).
+        Long table, one row per spot and frame (:data:`CURVES_COLUMNS`); ``drifted`` marks
+        frames whose shift exceeds ``max_shift_px`` or was limited to the crop margin.
     spot_set : SpotSet
         The spots used (detected or given); reusable with ``spots=``.
     projection_max : (H, W) ndarray of float32
@@ -532,7 +533,10 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
     known = exp[np.isfinite(exp)]
     exposure_changed = known.size > 1 and float(known.max() - known.min()) > 0.01 * float(known.min())
     shift_mag = np.hypot(shift_arr[:, 0], shift_arr[:, 1])
-    drifted = bool(clipped_any or (shift_mag > settings.max_shift_px).any())
+    # Per frame: beyond the limit, or limited to the crop margin (masks not moved fully).
+    frame_drifted = (shift_mag > settings.max_shift_px) | \
+        (np.rint(shift_arr[:, 0]) != shift_arr[:, 2]) | (np.rint(shift_arr[:, 1]) != shift_arr[:, 3])
+    drifted = bool(clipped_any or frame_drifted.any())
 
     curve_set = CurveSettings(
         baseline_end_s=(None if settings.baseline_s is None else float(t[0] + settings.baseline_s)),
@@ -600,12 +604,14 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
         "saturated_px": sig["saturated_px"].T.ravel(),
         "shift_x_px": np.tile(shift_arr[:, 0], n),
         "shift_y_px": np.tile(shift_arr[:, 1], n),
+        "drifted": np.tile(frame_drifted, n),
     }, columns=list(CURVES_COLUMNS))
     measured = [s for s in shifts if s[3]]
     drift_info = {
         "enabled": settings.drift, "frames_measured": len(measured),
         "max_shift_px": float(shift_mag.max()) if shift_mag.size else 0.0,
         "limit_px": settings.max_shift_px, "clipped": bool(clipped_any), "drifted": drifted,
+        "frames_drifted": int(frame_drifted.sum()),
         "method": "phase correlation (cv2.phaseCorrelate) on the luma/channel plane box-"
                   "downscaled to <= %d px, sub-pixel refined; masks moved by whole pixels"
                   % settings.drift_target_px if settings.drift else "off"}

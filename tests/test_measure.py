@@ -353,3 +353,17 @@ def test_given_spots_on_dark_recording_report_no_pulse(dark_recording):
     flags = res.spots_table.loc[0, "flags"].split(";")
     assert "no_pulse" in flags
     assert np.isfinite(res.spots_table.loc[0, "integral"])  # a blank's integral is valid
+
+
+def test_frames_beyond_the_shift_limit_are_flagged(jpeg_card):
+    # The simulated tremor reaches 3 px; with a 1 px limit the frames beyond it are
+    # marked in curves.csv and every spot carries "drifted".
+    folder, truth, res = jpeg_card
+    assert not res.curves_table["drifted"].any()
+    tight = measure(folder, spots=res.spot_set, settings=MeasureSettings(max_shift_px=1.0))
+    per_frame = tight.curves_table[tight.curves_table.spot == 1]["drifted"].to_numpy()
+    shifts = tight.curves_table[tight.curves_table.spot == 1][["shift_x_px", "shift_y_px"]]
+    assert per_frame.any() and not per_frame.all()
+    np.testing.assert_array_equal(per_frame, np.hypot(*shifts.to_numpy().T) > 1.0)
+    assert all("drifted" in f.split(";") for f in tight.spots_table["flags"])
+    assert tight.provenance["analysis"]["drift"]["frames_drifted"] == int(per_frame.sum())
