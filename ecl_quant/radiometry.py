@@ -492,6 +492,34 @@ def _video_rgb(frame: Frame, b: tuple[int, int, int, int], channels: Iterable[st
     return out
 
 
+def _video_rgb_bound(frame: Frame, b: tuple[int, int, int, int], y_max: float) -> float:
+    """Upper bound of R', G' and B' (normalised) over a crop, from code extremes.
+
+    R' and B' grow with E'Y and with E'Cr / E'Cb; G' grows with E'Y and falls with
+    both, so the crop's largest Y' (``y_max``, a code) with the covering chroma block's
+    largest (R', B') or smallest (G') Cb, Cr bounds every pixel's value (same mapping
+    as :func:`_video_rgb`).
+    """
+    assert frame.chroma is not None
+    r0, r1, c0, c1 = b
+    y_off, y_span, c_off, c_span = _video_scales(frame)
+    sy, sx = frame.chroma_step
+    cb_plane, cr_plane = frame.chroma
+    hc, wc = cb_plane.shape
+    rr = slice(min(r0 // sy, hc - 1), min((r1 - 1) // sy, hc - 1) + 1)
+    cc = slice(min(c0 // sx, wc - 1), min((c1 - 1) // sx, wc - 1) + 1)
+    cb, cr = cb_plane[rr, cc], cr_plane[rr, cc]
+    ey = (y_max - y_off) / y_span
+    cb_lo, cb_hi = ((float(cb.min()) - c_off) / c_span, (float(cb.max()) - c_off) / c_span)
+    cr_lo, cr_hi = ((float(cr.min()) - c_off) / c_span, (float(cr.max()) - c_off) / c_span)
+    kr, kb = _YUV_KR_KB.get(frame.yuv_matrix, _YUV_KR_KB["bt601"])
+    kg = 1.0 - kr - kb
+    red = ey + (2.0 - 2.0 * kr) * cr_hi
+    blue = ey + (2.0 - 2.0 * kb) * cb_hi
+    green = ey - kb * (2.0 - 2.0 * kb) / kg * cb_lo - kr * (2.0 - 2.0 * kr) / kg * cr_lo
+    return max(red, green, blue)
+
+
 def _raw_cells(frame: Frame, b: tuple[int, int, int, int], channel: str,
                base_of: Callable[[slice, slice], NDArray[Any]], reduce: str) -> NDArray[Any]:
     """Fill a crop from each photosite's 2x2 CFA cell.
@@ -645,7 +673,14 @@ def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] |
     if frame.kind == "video":
         y_off, y_span, _, _ = _video_scales(frame)
         peak = y_off + y_span
-        mask = frame.data[r0:r1, c0:c1] >= level * peak
+        luma = frame.data[r0:r1, c0:c1]
+        if luma.size and float(luma.max()) < level * peak and (
+                frame.chroma is None
+                or _video_rgb_bound(frame, b, float(luma.max())) < level - 1e-5):
+            # No pixel can reach the level (bound from the crop's code extremes; the
+            # margin covers float32 rounding of the exact test below).
+            return np.zeros(luma.shape, dtype=bool)
+        mask = luma >= level * peak
         if frame.chroma is not None:
             vals = _video_rgb(frame, b, ("red", "green", "blue"))
             for name in ("red", "green", "blue"):
@@ -663,6 +698,8 @@ def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] |
         codes = _raw_cells(frame, b, channel, lambda rs, cs: frame.data[rs, cs], "max")
         return np.asarray(codes >= thr)
     crop = frame.data[r0:r1, c0:c1]
+    if crop.size and float(crop.max()) < thr:  # nothing near the top code
+        return np.zeros(crop.shape[:2], dtype=bool)
     if crop.ndim == 3:
         return np.asarray(np.any(crop >= thr, axis=-1))
     return np.asarray(crop >= thr)
