@@ -132,11 +132,29 @@ def test_sigkill_during_measure_outputs(card, tmp_path, stop_at, capsys):
         _complete(out / f)
     run = json.loads((out / "run.json").read_text(encoding="utf-8"))
     assert sorted(run["outputs"]) == sorted(OUTPUT_FILES)
+    assert sorted(p.name for p in out.iterdir()) == sorted(OUTPUT_FILES)  # no stale temp
     # A finished run is not overwritten without --force.
     before = (out / "spots.csv").read_bytes()
     assert main(argv) == 2
     assert "--force" in capsys.readouterr().err
     assert (out / "spots.csv").read_bytes() == before
+
+
+def test_sigkill_during_a_forced_rewrite(card, tmp_path, capsys):
+    # Replacing a finished run with --force and dying half-way must not leave a folder
+    # that looks finished: run.json (the marker) goes first, so the rerun completes it.
+    from ecl_quant.measure import OUTPUT_FILES
+
+    out = tmp_path / "out"
+    argv = ["measure", str(card), "--out", str(out), "--quiet"]
+    assert main(argv) == 0
+    _kill_when_paused(_spawn(_PAUSE_AT_RENAME, str(out), "3", *argv, "--force"))
+    assert not (out / "run.json").exists()
+    for v in (p for p in out.iterdir() if not p.name.startswith(".")):
+        _complete(v)
+    capsys.readouterr()
+    assert main(argv) == 0, capsys.readouterr().err
+    assert sorted(p.name for p in out.iterdir()) == sorted(OUTPUT_FILES)  # no stale temp
 
 
 # ------------------------------------------------------------------ batch lock
