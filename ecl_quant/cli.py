@@ -209,14 +209,21 @@ def _add_simulate(sub: argparse._SubParsersAction) -> None:
         "manifest and the ground truth of the invented Tern Lake Hatchery scenario.")
     p.add_argument("--out", metavar="DIR", required=True, help="destination folder")
     p.add_argument("--seed", type=int, default=5, help="random seed (default: 5, the shipped demo)")
+    p.add_argument("--force", action="store_true",
+                   help="make the scenario again over an existing one in --out")
     _common(p)
     p.set_defaults(run=_run_simulate)
 
 
 def _run_simulate(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from ._io import check_overwrite
     from .scenario import simulate_scenario
 
-    truth = simulate_scenario(args.out, seed=args.seed)
+    check_overwrite([Path(args.out) / "manifest.csv", Path(args.out) / "truth.json"],
+                    force=args.force)
+    truth = simulate_scenario(args.out, seed=args.seed, overwrite=args.force)
     if not args.quiet:
         print(f"wrote {len(truth['recordings'])} recordings, manifest.csv and truth.json "
               f"to {args.out}")
