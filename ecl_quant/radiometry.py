@@ -641,9 +641,88 @@ def channel_values(frame: Frame, channel: str, *,
 
 def linear_values(frame: Frame, channel: str, transfer: TransferSpec | str = "auto", *,
                   region: tuple[slice, slice] | None = None) -> NDArray[np.float32]:
-    """:func:`channel_values` then :func:`linearize`, resolving ``auto`` on the frame."""
+    """:func:`channel_values` then :func:`linearize`, resolving ``auto`` on the frame.
+
+    For 8-bit video (``luma``, ``red``, ``blue``) and 8/16-bit stills (a colour channel,
+    or grey) the values are read from a table of every code (or (Y', Cr) / (Y', Cb)
+    code pair) made once with those same two functions, so they are the same numbers,
+    computed with one lookup per pixel.
+    """
     spec = resolve_transfer(transfer, frame)
+    fast = _table_values(frame, channel, spec, region)
+    if fast is not None:
+        return fast
     return linearize(channel_values(frame, channel, region=region), spec, channel=channel)
+
+
+_TABLE_TRANSFERS = ("srgb", "bt709", "gamma", "linear")
+
+
+@functools.lru_cache(maxsize=32)
+def _code_table(kind: str, channel: str, dtype: str, matrix: str, yuv_range: str,
+                chroma: bool, spec_kind: str, gamma: float | None) -> NDArray[np.float32]:
+    """Linear value of every code (video red/blue: every (Y', C) pair, index Y' * 256 + C)."""
+    spec = TransferSpec(spec_kind, gamma)
+    dt = np.dtype(dtype)
+    if kind == "still":
+        codes = np.arange(np.iinfo(dt).max + 1, dtype=dt)[None, :]
+        grid = Frame(index=0, time_s=0.0, data=codes, max_code=float(np.iinfo(dt).max),
+                     source="", kind="still", bit_depth=8 * dt.itemsize)
+    elif not chroma:
+        grid = Frame(index=0, time_s=0.0, data=np.arange(256, dtype=np.uint8)[None, :],
+                     max_code=255.0, source="", kind="video", yuv_matrix=matrix,
+                     yuv_range=yuv_range, bit_depth=8)
+    else:
+        y = np.repeat(np.arange(256, dtype=np.uint8)[:, None], 256, axis=1)
+        c = np.ascontiguousarray(y.T)
+        grid = Frame(index=0, time_s=0.0, data=y, max_code=255.0, source="", kind="video",
+                     chroma=(c, c), chroma_step=(1, 1), yuv_matrix=matrix,
+                     yuv_range=yuv_range, bit_depth=8)
+    table = linearize(channel_values(grid, channel), spec, channel=channel).reshape(-1)
+    table.flags.writeable = False
+    return table
+
+
+def _table_values(frame: Frame, channel: str, spec: TransferSpec,
+                  region: tuple[slice, slice] | None) -> NDArray[np.float32] | None:
+    """:func:`linear_values` by table lookup, or None where no table applies."""
+    if spec.kind not in _TABLE_TRANSFERS or channel not in CHANNELS:
+        return None
+    r0, r1, c0, c1 = _bounds(region, frame.shape)
+    if r1 <= r0 or c1 <= c0:
+        return None
+    data = frame.data
+    if frame.kind == "still":
+        if data.dtype not in (np.uint8, np.uint16) or channel == "raw" or (
+                data.ndim == 3 and channel == "luma"):
+            return None
+        crop = data[r0:r1, c0:c1] if data.ndim == 2 else data[r0:r1, c0:c1, _RGB_INDEX[channel]]
+        if float(frame.max_code) != float(np.iinfo(data.dtype).max):
+            return None
+        table = _code_table("still", "red", data.dtype.str, "", "", False, spec.kind, spec.gamma)
+        return np.take(table, crop)
+    if frame.kind != "video" or data.dtype != np.uint8 or frame.bit_depth != 8:
+        return None
+    y = data[r0:r1, c0:c1]
+    if channel == "luma" or (frame.chroma is None and channel in _RGB_INDEX):
+        table = _code_table("video", "luma", "|u1", frame.yuv_matrix, frame.yuv_range, False,
+                            spec.kind, spec.gamma)
+        return np.take(table, y)
+    if channel not in ("red", "blue") or frame.chroma is None:
+        return None
+    plane = frame.chroma[1] if channel == "red" else frame.chroma[0]
+    if plane.dtype != np.uint8:
+        return None
+    table = _code_table("video", channel, "|u1", frame.yuv_matrix, frame.yuv_range, True,
+                        spec.kind, spec.gamma)
+    # Chroma by nearest neighbour, as in _video_rgb: pixel (y, x) uses (y // sy, x // sx).
+    sy, sx = frame.chroma_step
+    rows = np.minimum(np.arange(r0, r1) // sy, plane.shape[0] - 1)
+    cols = np.minimum(np.arange(c0, c1) // sx, plane.shape[1] - 1)
+    idx = y.astype(np.uint16)
+    idx <<= 8
+    idx |= plane[rows][:, cols]
+    return np.take(table, idx)
 
 
 def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] | None = None,
