@@ -417,3 +417,38 @@ def test_calibrate_on_plausible_standards(data):
         cal.inverse_predict([float(np.median(y))])
 
     only_typed_errors(fit)
+
+
+# ------------------------------------------------------------------ device profiles
+
+
+def _valid_profile_doc() -> dict:
+    curve = [(i / 255) ** 2.2 for i in range(256)]
+    return {"schema": "ecl_quant.device_profile", "version": 1,
+            "response": {"red": curve, "green": curve, "blue": curve, "luma": curve},
+            "device": {"make": "Tern", "model": "Cam1"}}
+
+
+@FUZZ
+@given(data=st.data())
+def test_device_profile_readers(scratch, data):
+    # Both readers of profile JSON: the camera module's (schema-validated) and the one
+    # behind --transfer profile=FILE (radiometry), then a lookup through the curve.
+    from ecl_quant.camera import load_profile
+    from ecl_quant.radiometry import load_transfer_profile
+
+    how = data.draw(st.sampled_from(["edit", "edit", "bytes"]))
+    if how == "bytes":
+        blob = mutate(json.dumps(_valid_profile_doc()).encode(), data.draw(mutations()))
+    else:
+        blob = json.dumps(_edit_json(_valid_profile_doc(), data)).encode()
+    path = scratch / f"profile-{data.draw(st.integers(0, 10**9))}.json"  # a fresh name:
+    path.write_bytes(blob)  # the radiometry reader caches by path, size and mtime
+    only_typed_errors(lambda: load_profile(path))
+
+    def lookup() -> None:
+        prof = load_transfer_profile(path)
+        prof(np.array([0.0, 0.5, 1.0, 1.2]), "red")
+
+    only_typed_errors(lookup)
+    path.unlink()
