@@ -420,7 +420,8 @@ def simulate_batch(folder: str | Path, settings: ValidationSettings, batch: int
                       "aperture_radius_px": r_ap})
     manifest = root / "manifest.csv"
     cols = ["path", "sample", "role", "concentration", "spot", "spots"]
-    pd.DataFrame(manifest_rows, columns=cols).to_csv(manifest, index=False)
+    with atomic_write(manifest, "w") as fh:
+        pd.DataFrame(manifest_rows, columns=cols).to_csv(fh, index=False, lineterminator="\n")
     samples = {}
     for it in items:
         if it["sample"] is not None:
