@@ -991,18 +991,22 @@ def detect_spots(projection: NDArray[np.floating], *, method: Literal["threshold
 
 
 class ProjectionAccumulator:
-    """Running max and sum over time of registered frames (memory: three (H, W) arrays).
+    """Running max and sum over time of registered frames (memory: two (H, W) arrays).
 
     ``add(values, shift)`` takes a frame in its own pixel grid and the integer
     displacement ``(sx, sy)`` of its content relative to the reference frame; the
-    accumulators stay in reference coordinates.
+    accumulators stay in reference coordinates. How many frames covered each pixel is
+    kept as a 2-D difference array (four updates per frame), so borders that some
+    shifted frames did not reach are scaled correctly. With ``keep_sum=False`` only the
+    max is kept.
     """
 
-    def __init__(self, shape: tuple[int, int]) -> None:
+    def __init__(self, shape: tuple[int, int], *, keep_sum: bool = True) -> None:
         self.shape = (int(shape[0]), int(shape[1]))
         self._max = np.full(self.shape, -np.inf, np.float32)
-        self._sum = np.zeros(self.shape, np.float64)
-        self._count = np.zeros(self.shape, np.int32)
+        self.keep_sum = keep_sum
+        self._sum = np.zeros(self.shape if keep_sum else (0, 0), np.float32)
+        self._cover = np.zeros((self.shape[0] + 1, self.shape[1] + 1), np.int64)
         self.n_frames = 0
 
     def add(self, values: NDArray[np.floating], shift: tuple[int, int] = (0, 0)) -> None:
@@ -1018,22 +1022,34 @@ class ProjectionAccumulator:
             return
         src = values[ya + sy:yb + sy, xa + sx:xb + sx]
         np.maximum(self._max[ya:yb, xa:xb], src, out=self._max[ya:yb, xa:xb])
-        self._sum[ya:yb, xa:xb] += src
-        self._count[ya:yb, xa:xb] += 1
+        if self.keep_sum:
+            self._sum[ya:yb, xa:xb] += src
+        c = self._cover
+        c[ya, xa] += 1
+        c[ya, xb] -= 1
+        c[yb, xa] -= 1
+        c[yb, xb] += 1
         self.n_frames += 1
+
+    @property
+    def count(self) -> NDArray[np.int64]:
+        """Frames that covered each pixel."""
+        return np.cumsum(np.cumsum(self._cover, axis=0), axis=1)[:self.shape[0], :self.shape[1]]
 
     @property
     def max(self) -> NDArray[np.float32]:
         """Max projection (NaN where no frame covered the pixel)."""
         out = self._max.copy()
-        out[self._count == 0] = np.nan
+        out[self.count == 0] = np.nan
         return out
 
     @property
     def sum(self) -> NDArray[np.float32]:
         """Sum projection, scaled to the full frame count where borders were not covered."""
+        if not self.keep_sum:
+            raise SpotError("this projection keeps only the max (keep_sum=False)")
         with np.errstate(invalid="ignore", divide="ignore"):
-            mean = self._sum / self._count
+            mean = self._sum / self.count
         return (mean * self.n_frames).astype(np.float32)
 
 
