@@ -353,9 +353,8 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
     """
     from .radiometry import (
         MasterDark,
-        channel_values,
         hot_pixel_map,
-        linearize,
+        linear_values,
         load_dark,
         saturation_mask,
         transfer_choice,
@@ -404,7 +403,7 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
             f"{shape[1]}x{shape[0]}; record darks at the same resolution", path=dark_path)
 
     def linear(frame: Any, region: tuple[slice, slice] | None) -> NDArray[np.float32]:
-        lin = linearize(channel_values(frame, channel, region=region), spec, channel=channel)
+        lin = linear_values(frame, channel, spec, region=region)
         if master is not None:
             lin -= master.level if region is None else master.level[region]
         return lin
