@@ -1269,6 +1269,14 @@ class DriftTracker:
         if self._ref is None:
             self._ref, self._ref_contrast = prep, contrast
             return 0.0, 0.0, 0.0, False
+        if self.n_measured == 0 and contrast > self.refresh_ratio * self._ref_contrast:
+            # Nothing has matched the reference yet (a featureless card before the
+            # emission): its correlation with the first frame showing structure is noise
+            # and can peak anywhere, often one grid spacing away, with a high response.
+            # Re-base on this frame instead of measuring against the old reference.
+            self._ref, self._ref_contrast, self._ref_shift = prep, contrast, self._last
+            self.n_refreshes += 1
+            return self._last[0], self._last[1], 0.0, False
         dx, dy, resp = estimate_shift(self._ref, prep, window=self._window)
         measured = resp >= self.min_response and math.isfinite(dx) and math.isfinite(dy)
         if measured:
