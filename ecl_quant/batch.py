@@ -1279,11 +1279,24 @@ def _run_job(job: _Job) -> RecordingOutcome:
             return RecordingOutcome(
                 job.rec_id, job.path_text, "failed", elapsed_s=time.perf_counter() - t0,
                 error=type(err).__name__,
-                message=(err.reason if isinstance(err, EclQuantError) else str(err)) or repr(err),
-                detail=traceback.format_exc(), warnings=tuple(caught))
+                message=_failure_text(err, job), detail=traceback.format_exc(),
+                warnings=tuple(caught))
         caught = _warning_texts(records)
     return RecordingOutcome(job.rec_id, job.path_text, status, key=key,
                             elapsed_s=time.perf_counter() - t0, warnings=tuple(caught))
+
+
+def _failure_text(err: BaseException, job: _Job) -> str:
+    """The error's message; a file other than the recording itself is named first."""
+    if not isinstance(err, EclQuantError):
+        return str(err) or repr(err)
+    if err.path is None or Path(err.path).resolve() == Path(job.path).resolve():
+        return err.reason
+    try:  # a frame inside the recording's folder: name it relative to the folder
+        where = Path(err.path).resolve().relative_to(Path(job.path).resolve()).as_posix()
+    except ValueError:  # another input (dark frames, spot file, profile): its full path
+        where = err.path
+    return f"{where}: {err.reason}"
 
 
 def _warning_texts(records: Iterable[warnings.WarningMessage]) -> list[str]:

@@ -334,3 +334,95 @@ def test_pool_and_dask_transport_only_plain_data(tmp_path, monkeypatch):
         doc = dataclasses.asdict(job)
         assert json.loads(json.dumps(doc)) == doc  # only str/int/bool/None/dict/list
         assert not any(isinstance(v, bytes) for v in doc.values())
+
+
+# Writes that bypass ecl_quant._io (temporary file + rename) could leave a half-written
+# output. Each entry allowed here says why it is not an output.
+_STREAMS = {"fh", "buf", "out", "stream"}
+_ALLOWED_DIRECT_WRITES = {
+    ("radiometry.py", "open(mode='wb')"): "spill file of the dark stack in a TemporaryDirectory",
+}
+
+
+def _direct_writes(source: str) -> list[str]:
+    found = []
+    for node in ast.walk(ast.parse(source)):
+        if not isinstance(node, ast.Call):
+            continue
+        f = node.func
+        if isinstance(f, ast.Attribute) and f.attr in ("write_text", "write_bytes"):
+            found.append(f"{f.attr}()")
+        elif isinstance(f, ast.Name) and f.id == "open":
+            mode = node.args[1] if len(node.args) > 1 else next(
+                (k.value for k in node.keywords if k.arg == "mode"), None)
+            if isinstance(mode, ast.Constant) and set(str(mode.value)) & set("wax+"):
+                found.append(f"open(mode={mode.value!r})")
+        elif isinstance(f, ast.Attribute) and f.attr in ("to_csv", "to_parquet", "to_json",
+                                                         "savefig", "imwrite", "save",
+                                                         "tofile"):
+            # Allowed only into an open stream (an atomic_write handle or a BytesIO).
+            if node.args and not (isinstance(node.args[0], ast.Name)
+                                  and node.args[0].id in _STREAMS):
+                found.append(f".{f.attr}(path)")
+        elif isinstance(f, ast.Attribute) and f.attr == "dump" and len(node.args) > 1 and not (
+                isinstance(node.args[1], ast.Name) and node.args[1].id in _STREAMS):
+            found.append(".dump(obj, path)")
+    return found
+
+
+def test_direct_write_detector_catches_the_patterns():
+    bad = ("p.write_text('x')\nopen(p, 'w')\nopen(p, mode='ab')\ndf.to_csv(path)\n"
+           "fig.savefig('a.png')\njson.dump(doc, open_file)\n")
+    good = "open(p)\nopen(p, 'rb')\ndf.to_csv(fh)\nfig.savefig(buf)\njson.dump(doc, fh)\n"
+    assert len(_direct_writes(bad)) == 6 and _direct_writes(good) == []
+
+
+def test_every_output_goes_through_atomic_writes():
+    offenders = {}
+    for path in sorted((REPO / "ecl_quant").rglob("*.py")):
+        if path.name == "_io.py":
+            continue
+        uses = [u for u in _direct_writes(path.read_text(encoding="utf-8"))
+                if (path.name, u) not in _ALLOWED_DIRECT_WRITES]
+        if uses:
+            offenders[str(path.relative_to(REPO))] = uses
+    assert not offenders, (f"write outputs with ecl_quant._io.atomic_write / "
+                           f"write_json_atomic: {offenders}")
+
+
+# ------------------------------------------------------------------ a batch goes on
+
+
+def test_batch_with_a_damaged_recording_finishes_partially(tmp_path, capsys):
+    # One bad recording among good ones: the batch finishes the rest, exits 1, prints one
+    # line, and errors.csv names the file and what is wrong (STYLE.md rule 10).
+    import shutil
+
+    import pandas as pd
+
+    from ecl_quant.simulate import SimulationSpec, simulate_recording
+
+    study = tmp_path / "study"
+    spec = SimulationSpec(size=(48, 64), n_rows=1, n_cols=2, radius_px=5.0, spacing_px=24.0,
+                          amplitudes=(0.3, 0.3), n_frames=10, fps=8.0, onset_s=0.3,
+                          rise_s=0.2, decay_s=0.5, encoding="png", seed=3)
+    simulate_recording(study / "blank", spec)
+    for name in ("std1", "std2"):
+        shutil.copytree(study / "blank", study / name)
+    (study / "pond").mkdir()
+    damaged = CASES["image-truncated-jpeg"].make(study / "pond")  # pond/frame_0001.jpg
+    (study / "manifest.csv").write_text(
+        "path,sample,role,concentration\nblank,b,blank,0\nstd1,s1,standard,1\n"
+        "std2,s2,standard,2\npond,pond A,unknown,\n", encoding="utf-8")
+    out = tmp_path / "out"
+    capsys.readouterr()
+    code = main(["batch", str(study / "manifest.csv"), "--out", str(out), "--workers", "1",
+                 "--quiet"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 1, err
+    assert len(err) == 1 and err[0].startswith("partial: 1 of 4 recording"), err
+    errors = pd.read_csv(out / "errors.csv")
+    row = errors[errors["path"] == "pond"].iloc[0]
+    assert row["error"] == "InputFormatError"
+    assert row["message"].startswith("frame_0001.jpg: "), row["message"]
+    assert not bc.leftovers(out)
