@@ -26,7 +26,7 @@ bench: $(STAMP)
 	$(PY) benchmarks/run.py
 
 validate: $(STAMP)
-	$(PY) -m ecl_quant validate --out validate-output
+	$(PY) -m ecl_quant validate --out validate-output --force
 
 fuzz: $(STAMP)
 	ECL_QUANT_FUZZ_EXAMPLES=2000 $(PY) -m pytest -q tests/test_fuzz.py

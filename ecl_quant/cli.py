@@ -480,6 +480,8 @@ def _add_validate(sub: argparse._SubParsersAction) -> None:
                    "add compression bias)")
     p.add_argument("--keep", action="store_true",
                    help="keep the simulated recordings and batch outputs in OUT/work")
+    p.add_argument("--force", action="store_true",
+                   help="replace the outputs of an earlier validation in --out")
     _common(p)
     p.set_defaults(run=_run_validate)
 
@@ -499,6 +501,10 @@ def _run_validate(args: argparse.Namespace) -> int:
         from .errors import OutputError
 
         raise OutputError("exists and is not a folder; choose another --out", path=out)
+    from ._io import check_overwrite
+
+    check_overwrite([out / name for name in ("summary.json", "spots.csv", "samples.csv",
+                                             "validation.png")], force=args.force)
     result = run_validation(settings, work_dir=out / "work" if args.keep else None,
                             widen=args.quick, progress=not args.quiet)
     written = write_validation_outputs(result, out)
