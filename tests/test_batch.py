@@ -363,6 +363,15 @@ def study(tmp_path_factory):
     return {"root": root, "good": good, "partial": partial}
 
 
+@pytest.fixture(scope="module")
+def clean_run(study, tmp_path_factory):
+    """One uninterrupted in-process run (--workers 1) on the good manifest."""
+    out = tmp_path_factory.mktemp("clean") / "out"
+    res = run_batch(study["good"], BatchSettings(out_dir=out, workers=1, progress=False))
+    assert res.exit_code == 0, res.errors
+    return out
+
+
 def _calibration_doc(out: Path) -> dict:
     doc = json.loads((out / "calibration.json").read_text())
     doc.pop("provenance", None)  # holds the date of the fit
@@ -403,14 +412,12 @@ def test_partial_batch_finishes_the_rest(study, tmp_path, capsys):
     assert "cut.mp4" in captured.out and "damaged" in captured.out and "U2" in captured.out
 
 
-def test_same_results_from_one_two_workers_and_dask(study, tmp_path):
+def test_same_results_from_one_two_workers_and_dask(study, clean_run, tmp_path):
     from distributed import Client, LocalCluster
 
-    outs = {}
-    for name, kw in (("w1", {"workers": 1}), ("w2", {"workers": 2})):
-        outs[name] = tmp_path / name
-        res = run_batch(study["good"], BatchSettings(out_dir=outs[name], progress=False, **kw))
-        assert res.exit_code == 0
+    outs = {"w1": clean_run, "w2": tmp_path / "w2"}
+    res = run_batch(study["good"], BatchSettings(out_dir=outs["w2"], workers=2, progress=False))
+    assert res.exit_code == 0
     outs["dask"] = tmp_path / "dask"
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                       dashboard_address=None) as cluster, Client(cluster) as client:
@@ -422,10 +429,8 @@ def test_same_results_from_one_two_workers_and_dask(study, tmp_path):
     _same_outputs(outs["w1"], outs["dask"])
 
 
-def test_sigkill_midway_then_resume(study, tmp_path):
-    clean = tmp_path / "clean"
-    assert run_batch(study["good"], BatchSettings(out_dir=clean, workers=1,
-                                                  progress=False)).exit_code == 0
+def test_sigkill_midway_then_resume(study, clean_run, tmp_path):
+    clean = clean_run
     out = tmp_path / "killed"
     proc = subprocess.Popen([sys.executable, "-m", "ecl_quant", "batch", str(study["good"]),
                              "--out", str(out), "--workers", "1", "--quiet"],
@@ -469,7 +474,11 @@ def test_sigkill_midway_then_resume(study, tmp_path):
 
 def test_cache_follows_content_and_parameters(study, tmp_path):
     root = tmp_path / "copy"
-    shutil.copytree(study["root"], root, ignore=shutil.ignore_patterns("cut.mp4", "damaged"))
+    keep = ("s0", "s5", "s20", "u2")
+    root.mkdir()
+    for name in keep:
+        shutil.copytree(study["root"] / name, root / name)
+    _manifest([g for g in _GOOD if g[0] in keep], root / "good.csv")
     out = tmp_path / "out"
     settings = BatchSettings(out_dir=out, workers=1, progress=False)
     assert run_batch(root / "good.csv", settings).exit_code == 0
