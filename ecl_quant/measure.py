@@ -37,6 +37,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Literal
 
+import cv2
 import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
@@ -59,6 +60,7 @@ from .spots import (
     drift_plane,
     isolated_pixels,
     load_spots,
+    make_spot,
     spots_to_dict,
 )
 
@@ -103,6 +105,10 @@ class MeasureSettings:
     detect : {"threshold", "log"}
         Detection method (:func:`~ecl_quant.spots.detect_spots`).
     detect_projection : {"max", "sum"}
+    detect_scale : int or None
+        Downscale factor of the detection projection (box average of the codes): None
+        is 2 for frames of 720 rows or more (spots there are large; the pass costs a
+        quarter), else 1. Raw mosaics are never downscaled.
     detect_k_sigma, min_area_px, min_circularity : float
     aperture_scale : float
         Detected aperture radius = scale x half-maximum radius.
@@ -151,6 +157,7 @@ class MeasureSettings:
     fps: float | None = None
     detect: Literal["threshold", "log"] = "threshold"
     detect_projection: Literal["max", "sum"] = "max"
+    detect_scale: int | None = None
     detect_k_sigma: float = 6.0
     min_area_px: float = 9.0
     min_circularity: float = 0.6
@@ -191,6 +198,9 @@ class MeasureSettings:
             raise InputFormatError(f"unknown detection method {self.detect!r}; use threshold or log")
         if self.detect_projection not in ("max", "sum"):
             raise InputFormatError("detect_projection must be 'max' or 'sum'")
+        if self.detect_scale is not None and not (int(self.detect_scale) == self.detect_scale
+                                                  and 1 <= self.detect_scale <= 8):
+            raise InputFormatError("detect_scale must be a whole number from 1 to 8")
         if (self.read_var is None) != (self.gain is None):
             raise InputFormatError("give both read_var and gain for a noise model, or neither")
         if self.gain is not None and not self.gain > 0:
@@ -343,6 +353,51 @@ def _hot_pixel_fill(first: NDArray[np.float32], known: NDArray[np.bool_] | None
     return (rr * w + cc).astype(np.intp), nb, wt
 
 
+def _detect_factor(rec: Any, settings: MeasureSettings) -> int:
+    """Downscale factor of the detection pass: 2 for frames of 720 rows or more."""
+    if settings.detect_scale is not None:
+        return int(settings.detect_scale)
+    if rec.kind == "raw":
+        return 1  # the mosaic's colours would mix
+    return 2 if min(rec.shape) >= 720 else 1
+
+
+def _downscale(img: NDArray[Any], factor: int) -> NDArray[Any]:
+    """Box average by an integer factor (cv2.resize INTER_AREA), same dtype."""
+    if factor <= 1:
+        return img
+    h, w = img.shape[:2]
+    src = np.ascontiguousarray(img)
+    return cv2.resize(src, (w // factor, h // factor), interpolation=cv2.INTER_AREA)
+
+
+def _downscale_frame(frame: Any, factor: int) -> Any:
+    """The frame box-averaged by ``factor`` (codes; for the detection projection only).
+
+    Video: Y' is averaged to the chroma grid for 4:2:0 (factor 2), chroma kept.
+    """
+    if factor <= 1:
+        return frame
+    data = _downscale(frame.data, factor)
+    if frame.kind == "video" and frame.chroma is not None:
+        step = frame.chroma_step
+        cb, cr = frame.chroma
+        if step == (factor, factor):
+            chroma = (cb[:data.shape[0], :data.shape[1]], cr[:data.shape[0], :data.shape[1]])
+            new_step = (1, 1)
+        else:
+            chroma = (_downscale(cb, factor), _downscale(cr, factor))
+            new_step = step
+        return replace(frame, data=data, chroma=chroma, chroma_step=new_step)
+    return replace(frame, data=data)
+
+
+def _upscale(img: NDArray[np.float32], shape: tuple[int, int]) -> NDArray[np.float32]:
+    """Bilinear back to full size (the projection kept in the result and drawn)."""
+    src = np.where(np.isfinite(img), img, 0.0).astype(np.float32)
+    return cv2.resize(src, (shape[1], shape[0]), interpolation=cv2.INTER_LINEAR)
+
+
 def _empty_tables() -> tuple[pd.DataFrame, pd.DataFrame]:
     return pd.DataFrame(columns=list(SPOTS_COLUMNS)), pd.DataFrame(columns=list(CURVES_COLUMNS))
 
@@ -450,45 +505,68 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
     if spot_set is None:
         t1 = time.perf_counter()
         tracker = new_tracker()
-        acc = ProjectionAccumulator(shape)
+        f_det = _detect_factor(rec, settings)
+        small_shape = (shape[0] // f_det, shape[1] // f_det)
+        acc = ProjectionAccumulator(small_shape)
         base: NDArray[np.float32] | None = None
         hot_flat: NDArray[np.intp] = np.zeros(0, np.intp)
+        dark_small = None if master is None else _downscale(master.level, f_det)
         with _progress(rec.n_frames, "detect", progress) as bar:
             for frame in rec.frames():
                 if tracker is not None:
                     shifts.append(tracker.update(drift_plane(frame, channel)))
                 else:
                     shifts.append((0.0, 0.0, 0.0, False))
-                lin = linear(frame, None)
+                small = _downscale_frame(frame, f_det)
+                lin = linear_values(small, channel, spec)
                 if base is None:
                     # Hot pixels: sensor-fixed and noisy (their shot noise survives any
                     # dark subtraction); zeroed before registration so that the moving
                     # max projection does not smear them into spot-like blobs.
+                    if dark_small is not None:
+                        lin -= dark_small
                     hot = isolated_pixels(lin)
                     if master is not None:
-                        hot |= hot_pixel_map(master)
+                        hot |= _downscale(hot_pixel_map(master).astype(np.float32), f_det) > 0
                     hot_flat = np.flatnonzero(hot)
-                    base = lin.copy() if master is None else np.zeros_like(lin)
-                lin -= base
+                    base = lin.copy() if master is None else dark_small
+                    lin = lin - base if master is None else lin
+                else:
+                    lin -= base
                 lin.reshape(-1)[hot_flat] = 0.0
                 dx, dy = shifts[-1][0], shifts[-1][1]
-                acc.add(lin, (int(round(dx)), int(round(dy))))
+                acc.add(lin, (int(round(dx / f_det)), int(round(dy / f_det))))
                 bar.update(1)
         if acc.n_frames == 0:
             raise InputFormatError("the recording holds no frames", path=rec.path)
         projection_max = acc.max
         projection_sum = acc.sum
         proj = projection_max if settings.detect_projection == "max" else projection_sum
-        spot_set = detect_spots(
-            proj, method=settings.detect, min_area_px=settings.min_area_px,
+        found = detect_spots(
+            proj, method=settings.detect, min_area_px=settings.min_area_px / f_det**2,
             min_circularity=settings.min_circularity, k_sigma=settings.detect_k_sigma,
-            aperture_scale=settings.aperture_scale, aperture_radius_px=settings.aperture_radius_px,
+            min_sigma_px=1.5 / f_det, aperture_scale=settings.aperture_scale,
+            aperture_radius_px=(None if settings.aperture_radius_px is None
+                                else settings.aperture_radius_px / f_det),
             uniform_radius=settings.uniform_radius)
+        if f_det > 1:
+            # Small pixel k covers full-resolution pixels f k .. f k + f - 1.
+            off = (f_det - 1) / 2.0
+            spots_full = []
+            for sp in found.spots:
+                x, y, r = sp.params
+                spots_full.append(make_spot(sp.number, "circle",
+                                            (round(f_det * x + off, 3), round(f_det * y + off, 3),
+                                             round(f_det * r, 3))))
+            found = SpotSet(tuple(spots_full), shape, (), found.provenance)
+            projection_max = _upscale(projection_max, shape)
+            projection_sum = _upscale(projection_sum, shape)
         detection_info = {"projection": settings.detect_projection,
+                          "projection_scale": f_det,
                           "hot_pixels_masked": int(hot_flat.size),
                           "projection_dark": "master dark" if master is not None else
-                          "first frame (no dark given)", **dict(spot_set.provenance)}
-        spot_set = SpotSet(spot_set.spots, shape, spot_set.backgrounds,
+                          "first frame (no dark given)", **dict(found.provenance)}
+        spot_set = SpotSet(found.spots, shape, found.backgrounds,
                            {"detected_from": str(rec.path), "method": settings.detect,
                             "projection": settings.detect_projection})
         timings["detect_pass_s"] = time.perf_counter() - t1
@@ -511,7 +589,8 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
                            estimator=settings.background_estimator)
     region = integ.region
     tracker = new_tracker() if not shifts else None
-    crop_acc = ProjectionAccumulator(integ.geometry.shape) if detection_info == {} else None
+    crop_acc = (ProjectionAccumulator(integ.geometry.shape, keep_sum=False)
+                if detection_info == {} else None)
     exposures: list[float | None] = []
     clipped_any = False
     n_pass1 = len(shifts)
