@@ -175,7 +175,7 @@ class ValidationSettings:
         Keep each batch's simulated recordings and outputs (under ``work/``).
     """
 
-    n_batches: int = 110
+    n_batches: int = 70
     seed: int = 0
     workers: int = 2
     encoding: str = "png"
@@ -189,9 +189,9 @@ class ValidationSettings:
     standards: tuple[float, ...] = (1.0, 2.0, 5.0, 10.0, 20.0)
     standard_replicates: int = 3
     n_blanks: int = 4
-    n_unknowns: int = 4
+    n_unknowns: int = 6
     unknown_replicates: tuple[int, int] = (1, 3)
-    n_test_blanks: int = 2
+    n_test_blanks: int = 3
     test_blank_replicates: tuple[int, int] = (1, 3)
     response_fs_per_conc: tuple[float, float] = (0.008, 0.016)
     blank_amplitude_fs: tuple[float, float] = (0.0, 0.004)
