@@ -1884,8 +1884,9 @@ def spot_sharpness(image: Any, spots: Iterable[tuple[float, float, float]], *,
                    n_brightest: int = 3, smooth_px: float = 1.0) -> float:
     """Sharpness of spot edges: variance of the Laplacian on the spot projection.
 
-    The image is smoothed with a Gaussian of ``smooth_px`` first, so that pixel noise
-    and JPEG blocks do not count as edges. Each spot's half-maximum radius R is measured
+    The image is median filtered (3 x 3: isolated hot pixels) and smoothed with a
+    Gaussian of ``smooth_px`` first, so that pixel noise and JPEG blocks do not count as
+    edges. Each spot's half-maximum radius R is measured
     on the image itself (area above half its contrast), so the score does not depend on
     whether ``radius_px`` is the spot or a larger aperture. A box of +-(1.6 R + 2) px is
     normalised to the spot contrast (core median minus the median of the ring beyond
@@ -1922,21 +1923,22 @@ def spot_sharpness(image: Any, spots: Iterable[tuple[float, float, float]], *,
     import cv2
     import numpy as np
 
-    img = np.asarray(image, dtype=np.float32)
+    raw = np.asarray(image, dtype=np.float32)
+    img = cv2.medianBlur(raw, 3)  # isolated hot pixels are not edges
     if smooth_px > 0:
         img = cv2.GaussianBlur(img, (0, 0), float(smooth_px))
     scored: list[tuple[float, float]] = []
     for x, y, r in spots:
         if not (r > 1 and math.isfinite(x) and math.isfinite(y)):
             continue
-        first = _normalised_box(img, x, y, r)
+        first = _normalised_box(img, raw, x, y, r)
         if first is None:
             continue
         z, rho, _contrast = first
         r_half = math.sqrt(float((z[rho < 1.25 * r] > 0.5).sum()) / math.pi)
         if r_half < 1.5:
             continue
-        second = _normalised_box(img, x, y, r_half)
+        second = _normalised_box(img, raw, x, y, r_half)
         if second is None:
             continue
         scored.append((second[2], _laplacian_score(*second[:2], r_half)))
@@ -1951,8 +1953,10 @@ def spot_sharpness(image: Any, spots: Iterable[tuple[float, float, float]], *,
 _MIN_SHARPNESS_CONTRAST = 20.0
 
 
-def _normalised_box(img: Any, x: float, y: float, r: float) -> Any:
-    """(z, rho, contrast): the box +-(1.6 r + 2) around a spot, 0 = ring, 1 = core."""
+def _normalised_box(img: Any, raw: Any, x: float, y: float, r: float) -> Any:
+    """(z, rho, contrast): the box +-(1.6 r + 2) of ``img`` around a spot, 0 = ring,
+    1 = core; None when it leaves the frame, holds NaN, or the spot is too faint for
+    the pixel noise of ``raw`` (the unsmoothed image)."""
     import numpy as np
 
     h, w = img.shape[:2]
@@ -1971,11 +1975,15 @@ def _normalised_box(img: Any, x: float, y: float, r: float) -> Any:
         return None
     bg = float(np.median(crop[ring]))
     contrast = float(np.median(crop[core])) - bg
-    # Pixel noise from the Laplacian on the ring (a smooth tail has almost none; the
-    # 4-neighbour kernel multiplies white-noise variance by 20), robust (MAD).
+    # Pixel noise of the unsmoothed image from its Laplacian on the ring (a smooth tail
+    # has almost none; the 4-neighbour kernel multiplies white-noise variance by 20),
+    # robust (MAD) so that hot pixels do not count.
     import cv2
 
-    lap_ring = cv2.Laplacian(crop, cv2.CV_32F, ksize=1)[1:-1, 1:-1][ring[1:-1, 1:-1]]
+    raw_crop = np.asarray(raw[y0:y1, x0:x1], dtype=np.float32)
+    if not np.isfinite(raw_crop).all():
+        return None
+    lap_ring = cv2.Laplacian(raw_crop, cv2.CV_32F, ksize=1)[1:-1, 1:-1][ring[1:-1, 1:-1]]
     noise = 1.4826 * float(np.median(np.abs(lap_ring - np.median(lap_ring)))) / math.sqrt(20)
     if not contrast > 0 or not contrast > _MIN_SHARPNESS_CONTRAST * noise:
         return None  # too faint: the Laplacian would measure noise, not the edge
@@ -1984,11 +1992,15 @@ def _normalised_box(img: Any, x: float, y: float, r: float) -> Any:
 
 def _laplacian_score(z: Any, rho: Any, r: float) -> float:
     import cv2
+    import numpy as np
 
     lap = cv2.Laplacian(z.astype("float32"), cv2.CV_32F, ksize=1)[1:-1, 1:-1]
     rho_in = rho[1:-1, 1:-1]
-    ring = rho_in > 1.25 * r + 2
-    noise = float(lap[ring].var()) if ring.sum() >= 8 else 0.0
+    ring = lap[rho_in > 1.25 * r + 2]
+    # Robust (MAD) noise variance on the ring: a stray hot pixel there must not hide
+    # the edge.
+    noise = ((1.4826 * float(np.median(np.abs(ring - np.median(ring))))) ** 2
+             if ring.size >= 8 else 0.0)
     return max(float(lap.var()) - noise, 0.0) * float(r)
 
 

@@ -302,6 +302,72 @@ def test_execution_layers_agree():
     assert list(iter_completed(_square_or_fail, [], workers=2)) == []
 
 
+# ------------------------------------------------------------------ field QC pieces
+
+
+def _disk(radius_px: float, edge_px: float, *, size: int = 120, amp: float = 0.2):
+    import numpy as np
+
+    from ecl_quant.simulate import spot_profile
+
+    yy, xx = np.mgrid[0:size, 0:size]
+    c = size / 2 + 0.3
+    rho = np.hypot(xx - c, yy - c)
+    return 0.05 + amp * spot_profile(rho, radius_px=radius_px, edge_px=edge_px), (c, c)
+
+
+@pytest.mark.parametrize("radius_px", [6.0, 13.0])
+def test_spot_sharpness_follows_the_simulated_edge(radius_px):
+    import numpy as np
+
+    from ecl_quant.batch import QCLimits, spot_sharpness
+
+    # Ground truth: the simulator's logistic spot edge of known scale (ecl_quant.simulate).
+    rng = np.random.default_rng(3)
+    edges = [0.35, 0.45, 0.8, 1.5, 2.2]
+    scores = []
+    for edge in edges:
+        img, (x, y) = _disk(radius_px, edge)
+        clean = spot_sharpness(img, [(x, y, 1.5 * radius_px)])
+        noisy = spot_sharpness(img + rng.normal(0, 0.002, img.shape), [(x, y, 1.5 * radius_px)])
+        hot = img.copy()
+        hot[int(y), int(x + radius_px + 5)] += 0.6  # a hot pixel beside the spot
+        hot[int(y - radius_px + 2), int(x)] += 0.6  # and one on its edge
+        assert noisy == pytest.approx(clean, rel=0.1)
+        # The 3x3 median removes the hot pixels; on a steep edge it shifts the
+        # neighbours' medians by one rank, so the score moves a little, never the verdict.
+        with_hot = spot_sharpness(hot, [(x, y, radius_px)])
+        assert with_hot == pytest.approx(clean, rel=0.15)
+        assert (with_hot < QCLimits().blur_limit) == (clean < QCLimits().blur_limit)
+        scores.append(clean)
+    assert all(a > b for a, b in zip(scores, scores[1:]))  # softer edge, lower score
+    limit = QCLimits().blur_limit
+    assert min(scores[:3]) > limit > max(scores[3:])
+    # A faint sharp spot (contrast 5 noise SDs) is never called blurred; one too faint
+    # to judge (2 SDs) gets no score rather than a false flag.
+    for _ in range(5):
+        faint, (x, y) = _disk(radius_px, 0.35, amp=0.01)
+        score = spot_sharpness(faint + rng.normal(0, 0.002, faint.shape), [(x, y, radius_px)])
+        assert np.isnan(score) or score > limit
+        fainter, (x, y) = _disk(radius_px, 0.35, amp=0.004)
+        assert np.isnan(spot_sharpness(fainter + rng.normal(0, 0.002, fainter.shape),
+                                       [(x, y, radius_px)]))
+
+
+def test_recording_flags_against_limits():
+    from ecl_quant.batch import QCLimits, recording_flags
+
+    lim = QCLimits()
+    calm = {"max_drift_px": 0.5, "ambient_fraction": 0.04, "blur_score": 0.03,
+            "exposure_changed": False}
+    assert recording_flags(calm, lim) == []
+    rough = {"max_drift_px": 4.0, "ambient_fraction": 0.3, "blur_score": 0.004,
+             "exposure_changed": True}
+    assert recording_flags(rough, lim) == ["drifted", "exposure_changed", "ambient_light",
+                                           "blurred"]
+    assert recording_flags({"blur_score": None}, lim) == []  # unknown is not a flag
+
+
 # ------------------------------------------------------------------ end to end
 
 import pandas as pd  # noqa: E402
