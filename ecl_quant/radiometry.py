@@ -492,13 +492,12 @@ def _video_rgb(frame: Frame, b: tuple[int, int, int, int], channels: Iterable[st
     return out
 
 
-def _video_rgb_bound(frame: Frame, b: tuple[int, int, int, int], y_max: float) -> float:
-    """Upper bound of R', G' and B' (normalised) over a crop, from code extremes.
+def _video_candidate_luma(frame: Frame, b: tuple[int, int, int, int], level: float) -> float:
+    """Smallest Y' code from which R', G' or B' could reach ``level`` in a crop.
 
     R' and B' grow with E'Y and with E'Cr / E'Cb; G' grows with E'Y and falls with
-    both, so the crop's largest Y' (``y_max``, a code) with the covering chroma block's
-    largest (R', B') or smallest (G') Cb, Cr bounds every pixel's value (same mapping
-    as :func:`_video_rgb`).
+    both. With the covering chroma block's extremes (the mapping of :func:`_video_rgb`)
+    the largest possible lift of E'Y is bounded, and so is the E'Y each pixel needs.
     """
     assert frame.chroma is not None
     r0, r1, c0, c1 = b
@@ -509,15 +508,40 @@ def _video_rgb_bound(frame: Frame, b: tuple[int, int, int, int], y_max: float) -
     rr = slice(min(r0 // sy, hc - 1), min((r1 - 1) // sy, hc - 1) + 1)
     cc = slice(min(c0 // sx, wc - 1), min((c1 - 1) // sx, wc - 1) + 1)
     cb, cr = cb_plane[rr, cc], cr_plane[rr, cc]
-    ey = (y_max - y_off) / y_span
     cb_lo, cb_hi = ((float(cb.min()) - c_off) / c_span, (float(cb.max()) - c_off) / c_span)
     cr_lo, cr_hi = ((float(cr.min()) - c_off) / c_span, (float(cr.max()) - c_off) / c_span)
     kr, kb = _YUV_KR_KB.get(frame.yuv_matrix, _YUV_KR_KB["bt601"])
     kg = 1.0 - kr - kb
-    red = ey + (2.0 - 2.0 * kr) * cr_hi
-    blue = ey + (2.0 - 2.0 * kb) * cb_hi
-    green = ey - kb * (2.0 - 2.0 * kb) / kg * cb_lo - kr * (2.0 - 2.0 * kr) / kg * cr_lo
-    return max(red, green, blue)
+    lift = max((2.0 - 2.0 * kr) * cr_hi, (2.0 - 2.0 * kb) * cb_hi,
+               -kb * (2.0 - 2.0 * kb) / kg * cb_lo - kr * (2.0 - 2.0 * kr) / kg * cr_lo)
+    return y_off + y_span * (level - lift)
+
+
+def _video_rgb_at(frame: Frame, b: tuple[int, int, int, int], flat: NDArray[np.intp]
+                  ) -> tuple[NDArray[np.float32], NDArray[np.float32], NDArray[np.float32]]:
+    """(R', G', B') at the given flat indices of a crop: the arithmetic of _video_rgb."""
+    assert frame.chroma is not None
+    r0, _r1, c0, c1 = b
+    y_off, y_span, c_off, c_span = _video_scales(frame)
+    rows = r0 + flat // (c1 - c0)
+    cols = c0 + flat % (c1 - c0)
+    sy, sx = frame.chroma_step
+    cb_plane, cr_plane = frame.chroma
+    crow = np.minimum(rows // sy, cb_plane.shape[0] - 1)
+    ccol = np.minimum(cols // sx, cb_plane.shape[1] - 1)
+    ey = frame.data[rows, cols].astype(np.float32)
+    ey -= np.float32(y_off)
+    ey *= np.float32(1.0 / y_span)
+    inv = np.float32(1.0 / c_span)
+    ecb = (cb_plane[crow, ccol].astype(np.float32) - np.float32(c_off)) * inv
+    ecr = (cr_plane[crow, ccol].astype(np.float32) - np.float32(c_off)) * inv
+    kr, kb = _YUV_KR_KB.get(frame.yuv_matrix, _YUV_KR_KB["bt601"])
+    kg = 1.0 - kr - kb
+    red = ey + np.float32(2.0 - 2.0 * kr) * ecr
+    blue = ey + np.float32(2.0 - 2.0 * kb) * ecb
+    green = (ey - np.float32(kb * (2.0 - 2.0 * kb) / kg) * ecb
+             - np.float32(kr * (2.0 - 2.0 * kr) / kg) * ecr)
+    return red, green, blue
 
 
 def _raw_cells(frame: Frame, b: tuple[int, int, int, int], channel: str,
@@ -753,18 +777,24 @@ def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] |
         y_off, y_span, _, _ = _video_scales(frame)
         peak = y_off + y_span
         luma = frame.data[r0:r1, c0:c1]
-        if luma.size and float(luma.max()) < level * peak and (
-                frame.chroma is None
-                or _video_rgb_bound(frame, b, float(luma.max())) < level - 1e-5):
-            # No pixel can reach the level (bound from the crop's code extremes; the
-            # margin covers float32 rounding of the exact test below).
-            return np.zeros(luma.shape, dtype=bool)
-        mask = luma >= level * peak
-        if frame.chroma is not None:
-            vals = _video_rgb(frame, b, ("red", "green", "blue"))
-            for name in ("red", "green", "blue"):
-                mask |= vals[name] >= level
-        return np.asarray(mask)
+        mask = np.asarray(luma >= level * peak)
+        if frame.chroma is not None and luma.size:
+            # R', G', B' are computed only where Y' is high enough for the crop's chroma
+            # extremes to lift one of them to the level (the 1e-5 margin covers the
+            # float32 rounding of the values); the same values as _video_rgb there.
+            y_min = _video_candidate_luma(frame, b, level - 1e-5)
+            cand = np.flatnonzero(luma >= math.floor(y_min))
+            if cand.size:
+                if cand.size > luma.size // 4:  # many candidates: the whole crop at once
+                    vals = _video_rgb(frame, b, ("red", "green", "blue"))
+                    for name in ("red", "green", "blue"):
+                        mask |= vals[name] >= level
+                else:
+                    hit = np.zeros(cand.size, dtype=bool)
+                    for v in _video_rgb_at(frame, b, cand):
+                        hit |= v >= level
+                    mask.reshape(-1)[cand[hit]] = True
+        return mask
     thr = level * frame.max_code
     if frame.kind == "raw":
         if channel == "luma":
