@@ -1472,7 +1472,12 @@ def run_batch(manifest: str | Path | Manifest, settings: BatchSettings, *,
             "counts": counts,
             "calibration_error": cal_error,
             "lock_taken_over": lock.took_over,
-            "recordings": [dataclasses.asdict(o) | {"detail": None} for o in outcomes],
+            "recordings": [
+                dataclasses.asdict(o) | {
+                    "detail": None, "channel": j.channel, "transfer": j.transfer,
+                    "dark": j.dark, "spots_file": j.spots_file,
+                    "exposure_s": j.measure_options.get("exposure_s")}
+                for o, j in zip(outcomes, jobs)],
         }
         _write_json(out / "batch.json", provenance)
         if finalize is not None:

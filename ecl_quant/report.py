@@ -190,8 +190,9 @@ def _table(rows: Sequence[Mapping[str, Any]], columns: Sequence[tuple[str, str]]
     out = ['<div class="scroll"><table>']
     if caption:
         out.append(f"<caption>{_e(caption)}</caption>")
+    num_cls = ' class="num"'
     out.append("<thead><tr>" + "".join(
-        f'<th scope="col"{" class=num" if k in numeric else ""}>{_e(label)}</th>'
+        f'<th scope="col"{num_cls if k in numeric else ""}>{_e(label)}</th>'
         for k, label in columns) + "</tr></thead><tbody>")
     for r in rows:
         cells = []
@@ -392,6 +393,18 @@ def _section_parameters(batch: Mapping[str, Any], profiles: Mapping[str, Any]) -
     for name in ("measure_settings", "qc_limits"):
         if batch.get(name):
             parts.append(_kv_table(batch[name], caption=name.replace("_", " ")))
+    recs = batch.get("recordings") or []
+    if recs:
+        rows = [{**r, "dark": Path(r["dark"]).name if r.get("dark") else None,
+                 "spots_file": Path(r["spots_file"]).name if r.get("spots_file") else None}
+                for r in recs]
+        parts.append(_table(rows, [("rec_id", "recording"), ("status", "this run"),
+                                   ("channel", "channel"), ("transfer", "transfer"),
+                                   ("exposure_s", "exposure_s (given)"), ("dark", "dark"),
+                                   ("spots_file", "spots file"), ("elapsed_s", "time (s)")],
+                            numeric=("exposure_s", "elapsed_s"), digits=3,
+                            caption="Per-recording settings (from the manifest) and what "
+                                    "this run did: measured, taken from the cache, or failed"))
     if batch.get("versions"):
         parts.append(_kv_table(batch["versions"], caption="Software versions"))
     for path, prof in profiles.items():
