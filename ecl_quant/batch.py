@@ -531,6 +531,8 @@ def read_manifest(path: str | Path, *, allow_outside: bool = False,
                                 notes=rec.get("notes", "")))
 
     problems.extend(_cross_row_problems(rows))
+    if check_exists:
+        problems.extend(_spot_file_problems(rows))
     recordings = _group_recordings(rows, problems)
     if problems:
         raise ManifestError(problems, path=mpath)
@@ -561,6 +563,32 @@ def _cross_row_problems(rows: Sequence[ManifestRow]) -> list[str]:
         problems.append(f"the manifest has standards at {len(std_levels)} concentration"
                         f"{'s' if len(std_levels) != 1 else ''}; a calibration needs at least "
                         "two different concentrations")
+    return problems
+
+
+def _spot_file_problems(rows: Sequence[ManifestRow]) -> list[str]:
+    """Spot files must be valid and hold every spot number the rows name."""
+    from .spots import load_spots
+
+    problems: list[str] = []
+    numbers: dict[Path, set[int] | None] = {}
+    for r in rows:
+        if r.spots_file is None:
+            continue
+        if r.spots_file not in numbers:
+            try:
+                numbers[r.spots_file] = set(load_spots(r.spots_file).numbers)
+            except EclQuantError as err:
+                numbers[r.spots_file] = None
+                problems.append(f"line {r.line}: spots file {r.spots_file.name}: {err.reason}")
+        have = numbers[r.spots_file]
+        if have is not None and r.spots:
+            missing = [n for n in r.spots if n not in have]
+            if missing:
+                problems.append(
+                    f"line {r.line}: spot(s) {format_spot_list(tuple(missing))} not in the "
+                    f"spots file {r.spots_file.name} (it has "
+                    f"{format_spot_list(tuple(sorted(have))) or 'no spots'})")
     return problems
 
 

@@ -150,6 +150,33 @@ def test_manifest_good_rows(tmp_path):
     assert len(man.to_frame()) == 4
 
 
+def test_manifest_checks_spot_numbers_against_the_spots_file(tmp_path):
+    from ecl_quant.spots import SpotSet, make_spot, save_spots
+
+    _touch(tmp_path / "card.mp4")
+    save_spots(SpotSet(tuple(make_spot(k, "circle", (10.0 * k, 10.0, 4.0))
+                             for k in (1, 2, 3))), tmp_path / "layout.json")
+    (tmp_path / "broken.json").write_text("{not json")
+    m = _write(tmp_path / "m.csv", """
+        path,sample,role,concentration,spot,spots
+        card.mp4,A,standard,1,1-2,layout.json
+        card.mp4,B,standard,2,3;4,layout.json
+        card.mp4,C,standard,3,5,layout.json
+    """)
+    with pytest.raises(ManifestError) as info:
+        read_manifest(m)
+    assert len(info.value.problems) == 2
+    assert "line 3: spot(s) 4 not in the spots file layout.json (it has 1;2;3)" in str(info.value)
+    assert "line 4: spot(s) 5 not in" in str(info.value)
+    m2 = _write(tmp_path / "m2.csv", """
+        path,sample,role,concentration,spots
+        card.mp4,A,standard,1,broken.json
+        card.mp4,A,standard,1,broken.json
+    """)
+    with pytest.raises(ManifestError, match="broken.json") as info:
+        read_manifest(m2)
+
+
 def test_parse_spot_list():
     assert parse_spot_list("") is None
     assert parse_spot_list(" 3 ") == (3,)
