@@ -89,6 +89,8 @@ SPOTS_COLUMNS = (
 CURVES_COLUMNS = ("spot", "frame", "time_s", "signal", "signal_se", "background",
                   "saturated_px", "shift_x_px", "shift_y_px", "drifted")
 OUTPUT_FILES = ("spots.csv", "curves.csv", "spots.json", "run.json", "overlay.png", "curves.png")
+#: Hidden file present while write_measure_outputs runs (marks an unfinished folder).
+_WRITING_MARKER = ".ecl-quant-writing"
 
 
 @dataclass(frozen=True)
@@ -816,8 +818,9 @@ def _jsonable(obj: Any) -> Any:
 def check_output_dir(out_dir: str | Path, *, force: bool = False) -> Path:
     """Refuse an existing non-empty folder unless ``force``; a file is always refused.
 
-    A folder holding only some of the measure outputs and no ``run.json`` (written last)
-    is a run that was interrupted; it is completed without ``force``.
+    A folder that a writer left unfinished (its hidden ``.ecl-quant-writing`` marker still
+    there, no ``run.json``, nothing but measure outputs) is completed without ``force``:
+    the run was interrupted, e.g. killed.
 
     Raises
     ------
@@ -828,8 +831,8 @@ def check_output_dir(out_dir: str | Path, *, force: bool = False) -> Path:
         raise OutputError("exists and is not a folder; choose another --out", path=out)
     if out.is_dir() and not force:
         visible = [p for p in out.iterdir() if not p.name.startswith(".")]
-        interrupted = not (out / "run.json").exists() and all(
-            p.name in OUTPUT_FILES and p.is_file() for p in visible)
+        interrupted = (out / _WRITING_MARKER).is_file() and not (out / "run.json").exists() \
+            and all(p.name in OUTPUT_FILES and p.is_file() for p in visible)
         if visible and not interrupted:
             raise OutputError("folder is not empty; pass --force to overwrite its files or "
                               "choose another --out", path=out)
@@ -973,8 +976,11 @@ def write_measure_outputs(result: MeasureResult, out_dir: str | Path, *,
     run["written_utc"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
     contents["run.json"] = (json.dumps(_jsonable(run), indent=2) + "\n").encode()
     ensure_dir(out)
-    # run.json goes last and is removed first: without it the folder is an unfinished run
-    # (a process killed mid-way leaves no mix of two runs that looks complete).
+    # A marker first, run.json removed, run.json written last, marker removed: a process
+    # killed mid-way leaves no mix of two runs that looks complete, and the rerun knows
+    # the files are its own unfinished outputs.
+    with atomic_write(out / _WRITING_MARKER, "w") as fh:
+        fh.write("measure outputs being written; removed when run.json is complete\n")
     (out / "run.json").unlink(missing_ok=True)
     for stale in out.glob(".*.tmp"):  # temporary files of a writer that was killed
         if any(stale.name.startswith(f".{name}.") for name in OUTPUT_FILES):
@@ -984,6 +990,7 @@ def write_measure_outputs(result: MeasureResult, out_dir: str | Path, *,
         with atomic_write(out / name, "wb") as fh:
             fh.write(contents[name])
         written.append(out / name)
+    (out / _WRITING_MARKER).unlink(missing_ok=True)
     return written
 
 

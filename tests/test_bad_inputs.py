@@ -426,3 +426,35 @@ def test_batch_with_a_damaged_recording_finishes_partially(tmp_path, capsys):
     assert row["error"] == "InputFormatError"
     assert row["message"].startswith("frame_0001.jpg: "), row["message"]
     assert not bc.leftovers(out)
+
+
+# ------------------------------------------------------------------ never overwrite
+
+# (command line with {d} for the folder, the existing output it must not replace)
+_OVERWRITE_CASES = [
+    ("calibrate {d}/t.csv --out {d}/calibration.json", "calibration.json"),
+    ("quantify {d}/t.csv --calibration {d}/cal.json --out {d}/results.csv", "results.csv"),
+    ("measure {d}/rec --out {d}/m", "m/spots.csv"),
+    ("camera {d}/flats --out {d}/cam", "cam/camera.json"),
+    ("camera --bracket {d}/bracket --profile {d}/phone.json", "phone.json"),
+    ("simulate --out {d}/demo", "demo/manifest.csv"),
+    ("validate --out {d}/val", "val/summary.json"),
+    ("batch {d}/manifest.csv --out {d}/b", "b/notes.txt"),
+]
+
+
+@pytest.mark.parametrize("command, existing", _OVERWRITE_CASES,
+                         ids=[c.split()[0] + ("-bracket" if "--bracket" in c else "")
+                              for c, _ in _OVERWRITE_CASES])
+def test_no_command_replaces_an_existing_output_without_force(tmp_path, capsys, command,
+                                                              existing):
+    bc.good_manifest(tmp_path)
+    target = tmp_path / existing
+    target.parent.mkdir(parents=True, exist_ok=True)
+    target.write_bytes(b"somebody's earlier result\n")
+    argv = command.format(d=tmp_path).split() + ["--quiet"]
+    capsys.readouterr()
+    assert main(argv) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--force" in err[0], err
+    assert target.read_bytes() == b"somebody's earlier result\n"

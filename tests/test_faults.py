@@ -33,7 +33,8 @@ stop_at = int(sys.argv[2])
 real = os.replace
 count = [0]
 def replace(src, dst, *a, **k):
-    if os.path.realpath(os.fspath(dst)).startswith(out + os.sep):
+    final = os.path.realpath(os.fspath(dst))
+    if final.startswith(out + os.sep) and not os.path.basename(final).startswith("."):
         count[0] += 1
         if count[0] == stop_at:
             print("PAUSED", os.path.basename(os.fspath(dst)), flush=True)
@@ -122,6 +123,7 @@ def test_sigkill_during_measure_outputs(card, tmp_path, stop_at, capsys):
     visible = sorted(p.name for p in out.iterdir() if not p.name.startswith("."))
     # Renames are atomic: only files renamed before the kill are there, each one whole.
     assert len(visible) == stop_at - 1, visible
+    assert (out / ".ecl-quant-writing").is_file()  # the writer's "unfinished" marker
     assert set(visible) <= set(OUTPUT_FILES)
     for v in visible:
         _complete(out / v)
