@@ -210,7 +210,8 @@ def _add_simulate(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--out", metavar="DIR", required=True, help="destination folder")
     p.add_argument("--seed", type=int, default=5, help="random seed (default: 5, the shipped demo)")
     p.add_argument("--force", action="store_true",
-                   help="make the scenario again over an existing one in --out")
+                   help="write over existing files in --out (an earlier scenario is "
+                   "remade without it)")
     _common(p)
     p.set_defaults(run=_run_simulate)
 
@@ -219,11 +220,14 @@ def _run_simulate(args: argparse.Namespace) -> int:
     from pathlib import Path
 
     from ._io import check_overwrite
-    from .scenario import simulate_scenario
+    from .scenario import is_scenario_folder, simulate_scenario
 
-    check_overwrite([Path(args.out) / "manifest.csv", Path(args.out) / "truth.json"],
-                    force=args.force)
-    truth = simulate_scenario(args.out, seed=args.seed, overwrite=args.force)
+    out = Path(args.out)
+    # Remaking the demo scenario over an earlier one is what this command is for; other
+    # files named manifest.csv or truth.json are not replaced without --force.
+    ours = is_scenario_folder(out)
+    check_overwrite([out / "manifest.csv", out / "truth.json"], force=args.force or ours)
+    truth = simulate_scenario(out, seed=args.seed, overwrite=args.force or ours)
     if not args.quiet:
         print(f"wrote {len(truth['recordings'])} recordings, manifest.csv and truth.json "
               f"to {args.out}")

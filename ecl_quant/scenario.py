@@ -29,7 +29,8 @@ from ._io import ensure_dir, write_json_atomic, write_text_atomic
 from .errors import OutputError
 from .simulate import SimulationSpec, simulate_darks, simulate_recording
 
-__all__ = ["SCENARIO_NAME", "ResponseModel", "CardPlan", "scenario_plan", "simulate_scenario"]
+__all__ = ["SCENARIO_NAME", "ResponseModel", "CardPlan", "scenario_plan", "simulate_scenario",
+           "is_scenario_folder"]
 
 SCENARIO_NAME = "Tern Lake Hatchery"
 UNITS = "umol/L"
@@ -150,6 +151,17 @@ def _base_spec(seed: int, index: int) -> SimulationSpec:
         jpeg_subsampling="4:4:4", crf=14, video_preset="medium",
         start_time=f"2024-06-0{3 + index // 4}T{9 + index:02d}:15:00", seed=seed,
     )
+
+
+def is_scenario_folder(folder: str | Path) -> bool:
+    """Whether ``folder`` holds a scenario written by :func:`simulate_scenario`."""
+    import json
+
+    try:
+        doc = json.loads((Path(folder) / "truth.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    return isinstance(doc, dict) and doc.get("scenario") == SCENARIO_NAME
 
 
 def _write_layout(path: Path, spec: SimulationSpec) -> None:

@@ -696,3 +696,14 @@ def test_demo_recovers_the_simulated_truth(tmp_path):
     meas = pd.read_csv(out / "measurements.csv")
     g8 = meas[(meas["recording"] == "card-G") & (meas["spot"] == 8)].iloc[0]
     assert not g8["used"] and "saturated" in g8["flags"]
+
+
+def test_simulate_keeps_foreign_files(tmp_path, capsys):
+    from ecl_quant.scenario import is_scenario_folder
+
+    (tmp_path / "manifest.csv").write_text("path,sample,role\n")  # someone else's manifest
+    assert not is_scenario_folder(tmp_path)
+    assert main(["simulate", "--out", str(tmp_path), "--seed", "5"]) == 2
+    assert "--force" in capsys.readouterr().err
+    assert (tmp_path / "manifest.csv").read_text() == "path,sample,role\n"
+    assert is_scenario_folder(REPO / "sample_frames")  # the shipped demo is remade freely
