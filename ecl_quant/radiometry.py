@@ -492,6 +492,13 @@ def _video_rgb(frame: Frame, b: tuple[int, int, int, int], channels: Iterable[st
     return out
 
 
+def _code_threshold(threshold: float, dtype: np.dtype[Any]) -> Any:
+    """A threshold for integer codes that selects the same codes as ``>= threshold``."""
+    if not np.issubdtype(dtype, np.integer):
+        return threshold
+    return min(math.ceil(threshold), int(np.iinfo(dtype).max) + 1)
+
+
 def _video_candidate_luma(frame: Frame, b: tuple[int, int, int, int], level: float) -> float:
     """Smallest Y' code from which R', G' or B' could reach ``level`` in a crop.
 
@@ -777,7 +784,8 @@ def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] |
         y_off, y_span, _, _ = _video_scales(frame)
         peak = y_off + y_span
         luma = frame.data[r0:r1, c0:c1]
-        mask = np.asarray(luma >= level * peak)
+        # Integer codes: code >= t exactly when code >= ceil(t) (a faster comparison).
+        mask = np.asarray(luma >= _code_threshold(level * peak, luma.dtype))
         if frame.chroma is not None and luma.size:
             # R', G', B' are computed only where Y' is high enough for the crop's chroma
             # extremes to lift one of them to the level (the 1e-5 margin covers the
@@ -809,9 +817,14 @@ def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] |
     crop = frame.data[r0:r1, c0:c1]
     if crop.size and float(crop.max()) < thr:  # nothing near the top code
         return np.zeros(crop.shape[:2], dtype=bool)
+    code = _code_threshold(thr, crop.dtype)
     if crop.ndim == 3:
-        return np.asarray(np.any(crop >= thr, axis=-1))
-    return np.asarray(crop >= thr)
+        # Pixels with any channel at or above the threshold, from the flat positions of
+        # the codes that are (np.any along the short last axis is much slower).
+        mask = np.zeros(crop.shape[:2], dtype=bool)
+        mask.reshape(-1)[np.flatnonzero(crop >= code) // crop.shape[2]] = True
+        return mask
+    return np.asarray(crop >= code)
 
 
 # ----------------------------------------------------------------------------- darks
