@@ -645,7 +645,9 @@ def content_digest(path: str | Path) -> str:
             rel = child.relative_to(p)
             if any(part.startswith(".") for part in rel.parts) or not child.is_file():
                 continue
-            h.update(rel.as_posix().encode("utf-8") + b"\0" + sha256_file(child).encode() + b"\n")
+            # surrogateescape: file names that are not UTF-8 hash as their raw bytes.
+            name = rel.as_posix().encode("utf-8", "surrogateescape")
+            h.update(name + b"\0" + sha256_file(child).encode() + b"\n")
         return h.hexdigest()
     try:
         return sha256_file(p)
