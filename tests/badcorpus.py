@@ -419,6 +419,15 @@ def _manifest_probe(target: Path, folder: Path) -> str:
     return f"{len(man.rows)} row(s)"
 
 
+def _manifest_key_probe(target: Path, folder: Path) -> str:
+    """Validate the manifest and compute every recording's cache key (hashes its files)."""
+    from ecl_quant.batch import read_manifest, recording_key
+
+    man = read_manifest(target)
+    keys = {recording_key(r.path, parameters={}) for r in man.recordings}
+    return f"{len(man.rows)} row(s), {len(keys)} distinct cache key(s)"
+
+
 def _table_probe(target: Path, folder: Path) -> str:
     from ecl_quant.calibration import calibrate_table, read_table
 
@@ -650,6 +659,18 @@ def _escape_manifest(folder: Path) -> Path:
     return p
 
 
+def _odd_names_manifest(folder: Path) -> Path:
+    for seed, name in enumerate(("blank", "std 1", "std 2")):
+        (folder / name).mkdir()
+        write_png(folder / name / "frame 0001.png", _gradient(seed=seed))
+        write_png(Path(os.fsdecode(os.fsencode(str(folder / name)) + b"/frame\xe90002.png")),
+                  _gradient(seed=seed))
+    p = folder / "manifest.csv"
+    p.write_text('path,sample,role,concentration\nblank,b,blank,0\n"std 1",s1,standard,1\n'
+                 '"std 2",s2,standard,2\n', encoding="utf-8")
+    return p
+
+
 def _symlink_escape_manifest(folder: Path) -> Path:
     p = _escape_manifest(folder)
     (p.parent / "linked.png").symlink_to(folder / "elsewhere.png")
@@ -849,6 +870,9 @@ CASES: tuple[BadCase, ...] = (
     BadCase("manifest-path-escape", "manifests", "row path '../elsewhere.png' leaving the "
             "manifest's folder", _escape_manifest, _manifest_probe, InputFormatError,
             _cli_batch("out")),
+    BadCase("manifest-odd-file-names", "manifests", "recording folders named 'std 1' "
+            "holding frames named 'frame 0001.png' and b'frame\\xe90002.png'",
+            _odd_names_manifest, _manifest_key_probe, None),
     BadCase("manifest-symlink-escape", "manifests", "row path 'linked.png', a symbolic link "
             "to a file outside the manifest's folder", _symlink_escape_manifest,
             _manifest_probe, InputFormatError, _cli_batch("out")),
