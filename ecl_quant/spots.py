@@ -1282,7 +1282,12 @@ class DriftTracker:
         if measured:
             new = (self._ref_shift[0] + dx * self.factor, self._ref_shift[1] + dy * self.factor)
             jump = math.hypot(new[0] - self._last[0], new[1] - self._last[1])
-            measured = jump <= self.max_jump_px or resp >= self.strong_response
+            # A reference with much less structure than this frame (spots lighting up,
+            # some before others) matches it at grid-spacing lags as well as at the true
+            # one: it cannot vouch for a large jump, whatever the response.
+            weak_ref = contrast > self.refresh_ratio * self._ref_contrast
+            measured = jump <= self.max_jump_px or (resp >= self.strong_response
+                                                    and not weak_ref)
         if measured:
             self._last = new
             self.n_measured += 1
