@@ -501,6 +501,45 @@ def _measure_probe(target: Path, folder: Path) -> str:
             f"{flags or 'none'}")
 
 
+def _measure_with(**options: Any) -> Callable[[Path, Path], str]:
+    """Probe: measure the tiny recording card.png beside the target with one given spot,
+    the target passed as ``dark`` (when ``options`` has dark=True) or as a transfer profile."""
+    def probe(target: Path, folder: Path) -> str:
+        from ecl_quant.measure import MeasureSettings, measure
+
+        rec = write_png(folder / "card.png")
+        spots = _file("spots.json", _spot_doc([_GOOD_SPOT]))(folder)
+        if options.get("dark"):
+            res = measure(rec, spots=spots, dark=target)
+        else:
+            res = measure(rec, spots=spots,
+                          settings=MeasureSettings(transfer=f"profile={target}"))
+        return f"{len(res.spot_set)} spot(s) measured"
+    return probe
+
+
+def _cli_measure_dark(target: Path, folder: Path) -> list[str]:
+    rec = write_png(folder / "card.png")
+    spots = _file("spots.json", _spot_doc([_GOOD_SPOT]))(folder)
+    return ["measure", str(rec), "--spots", str(spots), "--dark", str(target), "--out",
+            str(folder / "out"), "--quiet"]
+
+
+def _cli_measure_profile(target: Path, folder: Path) -> list[str]:
+    rec = write_png(folder / "card.png")
+    spots = _file("spots.json", _spot_doc([_GOOD_SPOT]))(folder)
+    return ["measure", str(rec), "--spots", str(spots), "--transfer", f"profile={target}",
+            "--out", str(folder / "out"), "--quiet"]
+
+
+def _dark_of_other_size(folder: Path) -> Path:
+    darks = folder / "darks"
+    darks.mkdir()
+    for i in range(2):
+        write_png(darks / f"dark_{i:02d}.png", _gradient(H, W - 2, seed=i) // 8)
+    return darks
+
+
 def _cli_batch(out_name: str) -> Callable[[Path, Path], list[str]]:
     def argv(target: Path, folder: Path) -> list[str]:
         return ["batch", str(target), "--out", str(folder / out_name), "--workers", "1",
@@ -857,6 +896,20 @@ CASES: tuple[BadCase, ...] = (
             _cli_measure_spots),
     BadCase("spots-zero-byte", "spot files", "0-byte spots.json", _spots("spots.json", ""),
             _spots_probe, SpotError, _cli_measure_spots),
+    BadCase("dark-size-mismatch", "dark frames", "dark frames of 30x24 for a "
+            "32x24 recording", _dark_of_other_size, _measure_with(dark=True),
+            ShapeMismatchError, _cli_measure_dark),
+    BadCase("dark-folder-empty", "dark frames", "--dark folder holding only "
+            "notes.txt", _empty_folder, _measure_with(dark=True), InputFormatError,
+            _cli_measure_dark),
+    BadCase("profile-missing", "device profiles", "--transfer profile= naming a "
+            "file that is not there", lambda folder: folder / "phone.json",
+            _measure_with(), InputFormatError, _cli_measure_profile),
+    BadCase("profile-decreasing", "device profiles", "--transfer profile= whose "
+            "red curve goes down", _profile_json({
+                "schema": "ecl_quant.device_profile", "version": 1,
+                "response": {"red": [0.0, 0.6, 0.4, 1.0]}}), _measure_with(),
+            InputFormatError, _cli_measure_profile),
     # ---------------------------------------------------------------- manifests
     BadCase("manifest-missing-column", "manifests", "no role column",
             _manifest("path,sample,concentration\nblank.png,b,0\nstd1.png,s1,1\n"),
