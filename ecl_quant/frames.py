@@ -419,6 +419,7 @@ def _read_still_header(path: Path, max_pixels: int) -> _StillHeader:
 
     if not path.is_file():
         raise InputFormatError("file not found; check the path", path=path)
+    _check_not_empty(path)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # see read_exif
@@ -876,9 +877,22 @@ def _video_planes(fr: Any, path: Path) -> _Planes:
     )
 
 
+def _check_not_empty(path: Path) -> None:
+    """A 0-byte file is an upload or copy that never finished: say so plainly."""
+    try:
+        empty = path.stat().st_size == 0
+    except OSError:
+        return  # the reader reports what is wrong
+    if empty:
+        raise InputFormatError(
+            "file is empty (0 bytes): the copy or upload did not finish; copy it again",
+            path=path)
+
+
 def _open_container(path: Path) -> Any:
     import av
 
+    _check_not_empty(path)
     try:
         # Tags are provenance only: undecodable bytes in them must not reject the video.
         container = av.open(str(path), mode="r", metadata_errors="replace")
@@ -996,6 +1010,7 @@ def _read_dng(path: Path, max_pixels: int) -> tuple[
 
     if not path.is_file():
         raise InputFormatError("file not found; check the path", path=path)
+    _check_not_empty(path)
     raw = rawpy.RawPy()
     try:
         try:
