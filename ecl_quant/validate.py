@@ -1054,8 +1054,9 @@ def format_report(result: ValidationResult) -> str:
     b = a["bands"]
     ok = {True: "ok", False: "MISSED"}
     lines = [
-        f"integral z-scores: mean {i['mean']:+.3f} (band {b['z_mean'][0]:+.3f}..{b['z_mean'][1]:+.3f})"
-        f" [{ok[a['checks']['z_mean']]}], SD {i['sd']:.3f} (band {b['z_sd'][0]:.3f}.."
+        f"integral z-scores: mean {i['mean']:+.3f} (band {b['z_mean'][0]:+.3f}.."
+        f"{b['z_mean'][1]:+.3f}) [{ok[a['checks']['z_mean']]}], SD {i['sd']:.3f} "
+        f"(band {b['z_sd'][0]:.3f}.."
         f"{b['z_sd'][1]:.3f}) [{ok[a['checks']['z_sd']]}], n = {i['n']} spots"
         + ("" if a["checks"]["n_spots"] else f" [fewer than {b['min_spots']}]"),
         f"  window bias (trapezoid on frames vs exact integral) / SE: mean "
