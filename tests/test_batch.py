@@ -303,6 +303,14 @@ def test_lock_respects_a_live_pid_and_takes_over_a_dead_one(tmp_path):
 # ------------------------------------------------------------------ execution layer
 
 
+def _patient_dask():
+    """Longer dask connect timeouts: the test machine may be loaded (2 shared cores)."""
+    import dask
+
+    return dask.config.set({"distributed.comm.timeouts.connect": "120s",
+                            "distributed.comm.timeouts.tcp": "120s"})
+
+
 def _square_or_fail(x: int) -> int:
     if x == 3:
         raise ValueError("three is refused")
@@ -323,8 +331,8 @@ def test_execution_layers_agree():
     expected[3] = ("err", "three is refused")
     assert _collect(workers=1) == expected
     assert _collect(workers=2) == expected
-    with LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
-                      dashboard_address=None) as cluster:
+    with _patient_dask(), LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
+                                       dashboard_address=None) as cluster:
         assert _collect(dask=cluster.scheduler_address) == expected
     assert list(iter_completed(_square_or_fail, [], workers=2)) == []
 
@@ -512,8 +520,9 @@ def test_same_results_from_one_two_workers_and_dask(study, clean_run, tmp_path):
     res = run_batch(study["good"], BatchSettings(out_dir=outs["w2"], workers=2, progress=False))
     assert res.exit_code == 0
     outs["dask"] = tmp_path / "dask"
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                      dashboard_address=None) as cluster, Client(cluster) as client:
+    with _patient_dask(), LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                       dashboard_address=None) as cluster, \
+            Client(cluster) as client:
         res = run_batch(study["good"], BatchSettings(out_dir=outs["dask"], progress=False),
                         client=client)
     assert res.exit_code == 0
