@@ -205,6 +205,24 @@ def bench_calibration(inp: Inputs, n_draws: int, rep: Report,
             n_draws=n_draws, model=res["model"])
 
 
+def profile_measure(inp: Inputs, cache: Path, log: Callable[[str], None]) -> dict[str, str]:
+    """pyinstrument call trees of measure on the short recording (``--profile``)."""
+    from pyinstrument import Profiler
+
+    fig.warm_up(inp.stills, inp.spots)
+    out: dict[str, str] = {}
+    for mode, spots in (("spots", inp.spots), ("detect", None)):
+        prof = Profiler(interval=0.002)
+        prof.start()
+        fig.run_measure(inp.short_video, spots=spots)
+        prof.stop()
+        path = cache / f"profile-{inp.folder.name}-{mode}.txt"
+        path.write_text(prof.output_text(unicode=False, color=False), encoding="utf-8")
+        log(f"  measure ({mode}): {path}")
+        out[mode] = str(path)
+    return out
+
+
 # ------------------------------------------------------------------ environment
 
 
@@ -308,6 +326,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     ap.add_argument("--repeats", type=int, default=None,
                     help="runs of each timed pair (default: per config)")
     ap.add_argument("--quiet", action="store_true", help="only the final table")
+    ap.add_argument("--profile", action="store_true",
+                    help="also profile measure (spots given, detection) on the short "
+                    "recording with pyinstrument; text reports in the cache folder")
     args = ap.parse_args(argv)
 
     cfg = CONFIGS[args.config or ("quick" if args.quick else "full")]
@@ -344,6 +365,12 @@ def main(argv: Sequence[str] | None = None) -> int:
             rep.errors[g] = f"{type(err).__name__}: {err}"
             log(traceback.format_exc())
         timings[f"{g}_s"] = time.perf_counter() - t
+    if args.profile:
+        log("profile:")
+        try:
+            rep.runs["profiles"] = profile_measure(inp, args.cache, log)
+        except Exception as err:  # pyinstrument missing, or measure failed
+            rep.errors["profile"] = f"{type(err).__name__}: {err}"
     timings["total_s"] = time.perf_counter() - t0
 
     doc = {
