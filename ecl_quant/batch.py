@@ -900,7 +900,15 @@ def iter_completed(func: Callable[[Any], Any], items: Sequence[Any], *,
         that size; None uses one process per CPU. Ignored when ``dask`` is given.
     dask : str or distributed.Client or None
         Scheduler address (``tcp://host:8786``) or a connected client: run the items as
-        dask.distributed tasks. Workers must see the same file system paths.
+        dask.distributed tasks. Workers must see the same file system paths. Prefer
+        worker processes with one thread each: the batch worker records warnings with
+        ``warnings.catch_warnings``, which is not thread-safe before Python 3.14.
+
+    Notes
+    -----
+    The local pool starts workers with ``forkserver`` (``spawn`` elsewhere): a script
+    that calls this with ``workers > 1`` needs the usual
+    ``if __name__ == "__main__":`` guard.
 
     Yields
     ------
