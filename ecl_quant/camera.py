@@ -1359,7 +1359,11 @@ def _read_manifest(path: Path) -> list[LevelGroup]:
         f = (r.get("file") or "").strip()
         if not f:
             raise InputFormatError(f"row {i}: file is empty", path=path)
-        fp = (path.parent / f)
+        base = path.parent.resolve()
+        fp = (base / f).resolve()
+        if not fp.is_relative_to(base):  # confined, like the paths of a batch manifest
+            raise InputFormatError(f"row {i}: file {f!r} is outside the folder of the "
+                                   "manifest; keep the frames next to it", path=path)
         if not fp.is_file():
             raise InputFormatError(f"row {i}: file {f!r} does not exist", path=path)
         key = (role, t, float(lvl if lvl is not None else 1.0))
