@@ -1324,10 +1324,11 @@ def _num(text: str | None, what: str, where: Path, row: int, *, default: float |
     try:
         v = float(text)
     except ValueError:
-        raise InputFormatError(f"row {row}: {what} {text!r} is not a number", path=where) from None
+        raise InputFormatError(f"row {row}: {what} {text!r} is not a number; write it with a "
+                               "dot as decimal separator, e.g. 0.01", path=where) from None
     if not math.isfinite(v) or v < 0:
-        raise InputFormatError(f"row {row}: {what} {text!r} must be a finite number >= 0",
-                               path=where)
+        raise InputFormatError(f"row {row}: {what} {text!r} must be a finite number >= 0; "
+                               "fix that row", path=where)
     return v
 
 
