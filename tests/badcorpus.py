@@ -540,6 +540,29 @@ def _dark_of_other_size(folder: Path) -> Path:
     return darks
 
 
+def _levels(rows: str) -> Callable[[Path], Path]:
+    """A photon-transfer folder: two flat PNGs, a frame outside it, and levels.csv."""
+    def make(folder: Path) -> Path:
+        flats = folder / "flats"
+        flats.mkdir()
+        for i in range(2):
+            write_png(flats / f"flat_{i}.png", _gradient(colour=False, seed=i))
+        write_png(folder / "elsewhere.png", _gradient(colour=False))
+        (flats / "levels.csv").write_text("file,role,exposure_s\n" + rows, encoding="utf-8")
+        return flats
+    return make
+
+
+def _levels_probe(target: Path, folder: Path) -> str:
+    from ecl_quant.camera import discover_levels
+
+    return f"{len(discover_levels(target))} level group(s)"
+
+
+def _cli_camera(target: Path, folder: Path) -> list[str]:
+    return ["camera", str(target), "--out", str(folder / "out"), "--quiet"]
+
+
 def _cli_batch(out_name: str) -> Callable[[Path, Path], list[str]]:
     def argv(target: Path, folder: Path) -> list[str]:
         return ["batch", str(target), "--out", str(folder / out_name), "--workers", "1",
@@ -910,6 +933,12 @@ CASES: tuple[BadCase, ...] = (
                 "schema": "ecl_quant.device_profile", "version": 1,
                 "response": {"red": [0.0, 0.6, 0.4, 1.0]}}), _measure_with(),
             InputFormatError, _cli_measure_profile),
+    BadCase("camera-levels-path-escape", "camera levels", "levels.csv row naming "
+            "'../elsewhere.png'", _levels("flat_0.png,flat,0.01\n../elsewhere.png,flat,0.01\n"),
+            _levels_probe, InputFormatError, _cli_camera, names="levels.csv"),
+    BadCase("camera-levels-text-exposure", "camera levels", "levels.csv exposure_s 'fast'",
+            _levels("flat_0.png,flat,0.01\nflat_1.png,flat,fast\n"), _levels_probe,
+            InputFormatError, _cli_camera, names="levels.csv"),
     # ---------------------------------------------------------------- manifests
     BadCase("manifest-missing-column", "manifests", "no role column",
             _manifest("path,sample,concentration\nblank.png,b,0\nstd1.png,s1,1\n"),
