@@ -620,6 +620,10 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
                 flat = lin.reshape(-1)
                 flat[hot_fill[0]] = (flat[hot_fill[1]] * hot_fill[2]).sum(axis=1)
             sat = saturation_mask(frame, channel, region=region, level=settings.saturation_level)
+            if hot_fill[0].size:
+                # A hot pixel sits at the top code in every frame whatever the light: it was
+                # replaced above, so it must not mark the spot as saturated either.
+                sat.flat[hot_fill[0]] = False
             integ.add(lin, time_s=frame.time_s, shift_px=(sh[0], sh[1]), saturated_crop=sat)
             clipped_any |= integ.clip_shift(sh[0], sh[1])[2]
             if crop_acc is not None:

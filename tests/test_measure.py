@@ -382,3 +382,31 @@ def test_half_resolution_detection_finds_the_same_spots(card, request):
     np.testing.assert_allclose(half.spots_table["y_px"], res.spots_table["y_px"], atol=0.5)
     diff = np.abs(half.spots_table["integral"] - res.spots_table["integral"])
     assert (diff < res.spots_table["integral_se"]).all()
+
+
+def test_hot_pixel_at_top_code_inside_an_aperture_is_not_saturation(tmp_path):
+    # common practice: a hot pixel (stuck at the top code in every frame, dark frames
+    # included) carries no information about the light; it is filled from its neighbours
+    # and must not invalidate the spot as "saturated". Truth from the project's simulator.
+    from PIL import Image
+
+    folder = tmp_path / "card"
+    spec = SimulationSpec(**{**CARD, "n_frames": 60, "drift_px": 0.0, "n_hot_pixels": 0},
+                          encoding="png", seed=21)
+    truth = simulate_recording(folder, spec)
+    clean = measure(folder).spots_table.set_index("spot")
+    s1 = truth.spots[0]
+    x, y = int(round(s1.x_px)) + 2, int(round(s1.y_px)) - 1
+    for f in sorted(folder.glob("*.png")):
+        with Image.open(f) as im:
+            im.load()
+            exif = im.getexif()
+            img = im.copy()
+        img.putpixel((x, y), (255,) * len(img.getbands()))
+        img.save(f, exif=exif)
+    hot = measure(folder).spots_table.set_index("spot")
+    assert "saturated" not in hot.loc[1, "flags"].split(";")
+    assert hot.loc[1, "saturated_frames"] == 0
+    assert np.isfinite(hot.loc[1, "integral"])
+    # The filled pixel changes the integral by far less than its standard error.
+    assert abs(hot.loc[1, "integral"] - clean.loc[1, "integral"]) < clean.loc[1, "integral_se"]
