@@ -1360,6 +1360,9 @@ def _read_manifest(path: Path) -> list[LevelGroup]:
         f = (r.get("file") or "").strip()
         if not f:
             raise InputFormatError(f"row {i}: file is empty", path=path)
+        if "\x00" in f:
+            raise InputFormatError(f"row {i}: file {f!r} contains a NUL character; fix the "
+                                   "file name in the manifest", path=path)
         base = path.parent.resolve()
         fp = (base / f).resolve()
         if not fp.is_relative_to(base):  # confined, like the paths of a batch manifest
