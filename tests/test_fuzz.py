@@ -452,3 +452,34 @@ def test_device_profile_readers(scratch, data):
 
     only_typed_errors(lookup)
     path.unlink()
+
+
+# ------------------------------------------------------------------ CSV tables from bytes
+
+_GOOD_TABLE = b"concentration,response,role\n0,0.011,blank\n0,0.009,blank\n1,0.52,standard\n" \
+              b"2,1.01,standard\n4,2.03,standard\n8,3.98,standard\n"
+_GOOD_LEVELS = b"file,role,exposure_s\nflat_0.png,flat,0.01\nflat_1.png,flat,0.01\n"
+
+
+@FUZZ
+@given(ops=mutations(8), suffix=st.sampled_from([".csv", ".tsv", ".txt", ".parquet"]))
+def test_calibration_table_reader(scratch, ops, suffix):
+    from ecl_quant.calibration import calibrate_table, read_table
+
+    path = scratch / f"standards{suffix}"
+    path.write_bytes(mutate(_GOOD_TABLE, ops))
+    only_typed_errors(lambda: calibrate_table(read_table(path), model="linear", path=path))
+
+
+@FUZZ
+@given(ops=mutations(8))
+def test_camera_levels_reader(scratch, ops):
+    from ecl_quant.camera import discover_levels
+
+    folder = scratch / "flats"
+    if not folder.exists():
+        folder.mkdir()
+        for i in range(2):
+            bc.write_png(folder / f"flat_{i}.png", bc._gradient(colour=False, seed=i))
+    (folder / "levels.csv").write_bytes(mutate(_GOOD_LEVELS, ops))
+    only_typed_errors(lambda: discover_levels(folder))
