@@ -1251,6 +1251,41 @@ class DriftTracker:
         self.n_refreshes = 0
         self.n_measured = 0
 
+    def _nearer_match(self, prep: NDArray[np.float32], dx: float, dy: float
+                      ) -> tuple[float, float] | None:
+        """The best whole-pixel lag within ``max_jump_px`` of the last accepted shift,
+        sub-pixel refined, when the frames correlate there at least as well as at the
+        phase-correlation peak ``(dx, dy)`` (downscaled px); else None.
+
+        A card whose only structure is its spot grid correlates at every multiple of the
+        pitch, and more so while the spots light up one after another: a far peak is
+        then as likely an alias as a real jump, and the nearer match is preferred.
+        """
+        f = self.factor
+        r = max(1, int(math.ceil(self.max_jump_px / f)))
+        cx = int(round((self._last[0] - self._ref_shift[0]) / f))
+        cy = int(round((self._last[1] - self._ref_shift[1]) / f))
+        ix, iy = int(round(dx)), int(round(dy))
+        a = (self._ref - self._ref.mean()) * self._window
+        b = (prep - prep.mean()) * self._window
+        ab, bb = cv2.GaussianBlur(a, (0, 0), 1.0), cv2.GaussianBlur(b, (0, 0), 1.0)
+        lags = [(cx + i, cy + j) for j in range(-r, r + 1) for i in range(-r, r + 1)
+                if i * i + j * j <= r * r]
+        m = 2 + max(abs(v) for lag in lags + [(ix, iy)] for v in lag)
+        h, w = a.shape
+        if h - 2 * m < 4 or w - 2 * m < 4:
+            return None
+        core = ab[m:h - m, m:w - m]
+
+        def corr(lag: tuple[int, int]) -> float:
+            return float(np.vdot(core, bb[m + lag[1]:h - m + lag[1], m + lag[0]:w - m + lag[0]]))
+
+        score = [corr(lag) for lag in lags]
+        k = int(np.argmax(score))
+        if score[k] < corr((ix, iy)):
+            return None
+        return _refine_shift(a, b, float(lags[k][0]), float(lags[k][1]), 1.0)
+
     def update(self, plane: NDArray[np.generic]) -> tuple[float, float, float, bool]:
         """Shift of this frame's content relative to the reference, in full-resolution px.
 
@@ -1286,6 +1321,12 @@ class DriftTracker:
             # some before others) matches it at grid-spacing lags as well as at the true
             # one: it cannot vouch for a large jump, whatever the response.
             weak_ref = contrast > self.refresh_ratio * self._ref_contrast
+            near = (self._nearer_match(prep, dx, dy)
+                    if jump > self.max_jump_px and not weak_ref else None)
+            if near is not None:
+                new = (self._ref_shift[0] + near[0] * self.factor,
+                       self._ref_shift[1] + near[1] * self.factor)
+                jump = math.hypot(new[0] - self._last[0], new[1] - self._last[1])
             measured = jump <= self.max_jump_px or (resp >= self.strong_response
                                                     and not weak_ref)
         if measured:
