@@ -486,6 +486,11 @@ def _add_validate(sub: argparse._SubParsersAction) -> None:
                    help="keep the simulated recordings and batch outputs in OUT/work")
     p.add_argument("--force", action="store_true",
                    help="replace the outputs of an earlier validation in --out")
+    p.add_argument("--weights", default=None, choices=["1/x2", "1/y2", "1/var"],
+                   help="calibration weights, as batch --weights (default: none)")
+    p.add_argument("--spot-cv", type=float, default=0.0, metavar="CV",
+                   help="relative spot-to-spot (electrode) variability of the simulated "
+                   "brightness (default: 0, replicates differ by measurement noise only)")
     _common(p)
     p.set_defaults(run=_run_validate)
 
@@ -499,7 +504,8 @@ def _run_validate(args: argparse.Namespace) -> int:
     n = args.batches if args.batches is not None else (
         QUICK_BATCHES if args.quick else ValidationSettings.n_batches)
     settings = ValidationSettings(n_batches=n, seed=args.seed, workers=args.workers,
-                                  encoding=args.encoding, keep_files=args.keep)
+                                  encoding=args.encoding, keep_files=args.keep,
+                                  weights=args.weights, spot_cv=args.spot_cv)
     out = Path(args.out)
     if out.exists() and not out.is_dir():
         from .errors import OutputError
