@@ -1053,7 +1053,11 @@ def format_report(result: ValidationResult) -> str:
     i, c, bl, a = s["integrals"], s["concentrations"], s["blanks"], s["assessment"]
     b = a["bands"]
     ok = {True: "ok", False: "MISSED"}
+    st = result.provenance["settings"]
     lines = [
+        f"{st['n_batches']} batches ({st['encoding']}, {st['model']} calibration, weights "
+        f"{st['weights'] or 'none'}, spot CV {st['spot_cv']:g}, seed {st['seed']}); "
+        f"bands {'widened by 3 SE' if a['bands']['widened'] else 'as targeted'}",
         f"integral z-scores: mean {i['mean']:+.3f} (band {b['z_mean'][0]:+.3f}.."
         f"{b['z_mean'][1]:+.3f}) [{ok[a['checks']['z_mean']]}], SD {i['sd']:.3f} "
         f"(band {b['z_sd'][0]:.3f}.."
