@@ -1327,12 +1327,15 @@ def _loq_relative(cal: Calibration, opts: CalibrationOptions) -> dict[str, Any]:
         return {"available": False, "loq": None, **base,
                 "reason": "the relative uncertainty never falls to 1/k within the standards"}
     i = int(ok[0])
-    if i == 0:
-        xq = float(grid[0])
-    else:
+    xq = float(grid[i])
+    if i > 0 and np.isfinite(h[i - 1]):  # refine between the grid points around the crossing
         def fun(xx: float) -> float:
             return float(xx - k * t * _delta_se_at_conc(cal, np.array([xx]), m)[0])
-        xq = float(optimize.brentq(fun, grid[i - 1], grid[i], xtol=1e-14 * x_hi, rtol=1e-12))
+        try:
+            xq = float(optimize.brentq(fun, grid[i - 1], grid[i], xtol=1e-14 * x_hi,
+                                       rtol=1e-12))
+        except ValueError:  # the delta-method SE is NaN inside the bracket: keep grid[i]
+            pass
     return {"available": True, "loq": xq, **base}
 
 
