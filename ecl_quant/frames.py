@@ -451,7 +451,7 @@ def _read_still_header(path: Path, max_pixels: int) -> _StillHeader:
             "an image name); re-export the image",
             path=path,
         ) from err
-    except OSError as err:
+    except (OSError, ValueError, SyntaxError, EOFError) as err:  # Pillow's damage reports
         raise InputFormatError(f"cannot read the image header ({err}); check the file",
                                path=path) from err
     _check_pixels(width, height, max_pixels, path)
