@@ -491,6 +491,10 @@ def _add_validate(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--spot-cv", type=float, default=0.0, metavar="CV",
                    help="relative spot-to-spot (electrode) variability of the simulated "
                    "brightness (default: 0, replicates differ by measurement noise only)")
+    p.add_argument("--noise", default="estimate", choices=["estimate", "true"],
+                   help="estimate: gain and read noise estimated from each recording (the "
+                   "pipeline's default); true: the simulator's values given to measure, as "
+                   "a camera characterised with 'camera' would supply them")
     _common(p)
     p.set_defaults(run=_run_validate)
 
@@ -505,7 +509,8 @@ def _run_validate(args: argparse.Namespace) -> int:
         QUICK_BATCHES if args.quick else ValidationSettings.n_batches)
     settings = ValidationSettings(n_batches=n, seed=args.seed, workers=args.workers,
                                   encoding=args.encoding, keep_files=args.keep,
-                                  weights=args.weights, spot_cv=args.spot_cv)
+                                  weights=args.weights, spot_cv=args.spot_cv,
+                                  noise=args.noise)
     out = Path(args.out)
     if out.exists() and not out.is_dir():
         from .errors import OutputError

@@ -172,6 +172,11 @@ class ValidationSettings:
     level : float
         Confidence level of the intervals.
     units : str
+    noise : {"estimate", "true"}
+        ``estimate``: the pipeline estimates gain and read noise from each recording
+        (its default). ``true``: it is given the simulator's gain and read noise
+        (``read_var``/``gain`` of MeasureSettings), as a camera characterised with
+        ``camera`` would supply them (these omit the 8-bit quantisation noise).
     measure_options : dict
         Further :class:`~ecl_quant.measure.MeasureSettings` fields.
     keep_files : bool
@@ -213,6 +218,7 @@ class ValidationSettings:
     weights: str | None = None
     level: float = 0.95
     units: str = "umol/L"
+    noise: str = "estimate"
     measure_options: dict[str, Any] = field(default_factory=dict)
     keep_files: bool = False
 
@@ -238,6 +244,8 @@ class ValidationSettings:
                 raise InputFormatError(f"{name} must be (low, high) with 1 <= low <= high")
         if not self.grids or any(r < 1 or c < 1 for r, c in self.grids):
             raise InputFormatError("grids must be a list of (rows, cols) of at least 1")
+        if self.noise not in ("estimate", "true"):
+            raise InputFormatError(f"noise {self.noise!r}: use estimate or true")
         if self.spot_cv < 0:
             raise InputFormatError("spot_cv must be >= 0")
         object.__setattr__(self, "measure_options", dict(self.measure_options))
@@ -470,10 +478,14 @@ def run_validation_batch(settings: ValidationSettings, batch: int, work_dir: str
     try:
         sim = simulate_batch(folder / "input", settings, batch)
         t_sim = time.perf_counter() - t0
+        opts = dict(settings.measure_options)
+        if settings.noise == "true":
+            opts.update(read_var=sim["sensor"]["read_noise_fs"] ** 2,
+                        gain=sim["sensor"]["gain_e_per_fs"])
         bs = BatchSettings(out_dir=folder / "out", workers=1, model=settings.model,
                            weights=settings.weights, level=settings.level,
                            units=settings.units, force=True, progress=False,
-                           measure_options=settings.measure_options)
+                           measure_options=opts)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             res = run_batch(sim["manifest"], bs)
@@ -1059,7 +1071,8 @@ def format_report(result: ValidationResult) -> str:
     st = result.provenance["settings"]
     lines = [
         f"{st['n_batches']} batches ({st['encoding']}, {st['model']} calibration, weights "
-        f"{st['weights'] or 'none'}, spot CV {st['spot_cv']:g}, seed {st['seed']}); "
+        f"{st['weights'] or 'none'}, spot CV {st['spot_cv']:g}, noise model "
+        f"{st.get('noise', 'estimate')}, seed {st['seed']}); "
         f"bands {'widened by 3 SE' if a['bands']['widened'] else 'as targeted'}",
         f"integral z-scores: mean {i['mean']:+.3f} (band {b['z_mean'][0]:+.3f}.."
         f"{b['z_mean'][1]:+.3f}) [{ok[a['checks']['z_mean']]}], SD {i['sd']:.3f} "
