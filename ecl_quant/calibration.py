@@ -1662,7 +1662,13 @@ def load_calibration(path: str | Path) -> Calibration:
     if version < 1:
         raise CalibrationError(f"format version {version} is not supported", path=p)
     check_schema(doc, path=p)
-    if canonical_hash(doc) != doc["sha256"]:
+    try:
+        digest = canonical_hash(doc)
+    except ValueError as err:  # NaN or Infinity: never written by save_calibration
+        raise CalibrationError("holds NaN or Infinity, which a saved calibration never does: "
+                               "the file was edited; refit with `ecl-quant calibrate`",
+                               path=p) from err
+    if digest != doc["sha256"]:
         raise CalibrationError("content does not match its sha256: the file was edited or "
                                "damaged; refit with `ecl-quant calibrate`", path=p)
     try:
