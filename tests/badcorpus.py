@@ -1002,6 +1002,9 @@ CASES: tuple[BadCase, ...] = (
     BadCase("caljson-extra-keys", "calibration JSON", "an added top-level key 'comment' "
             "(re-hashed)", _tampered(lambda d: _rehash({**d, "comment": "checked by JB"})),
             _caljson_probe, CalibrationError, _cli_quantify),
+    BadCase("caljson-nan", "calibration JSON", "slope replaced by NaN",
+            _tampered(lambda d: {**d, "parameters": {**d["parameters"], "slope": float("nan")}}),
+            _caljson_probe, CalibrationError, _cli_quantify),
     BadCase("caljson-truncated", "calibration JSON", "calibration.json cut in half",
             lambda folder: _file("calibration.json", good_calibration_json(
                 folder / "calibration.json").read_text(encoding="utf-8")[:200])(folder),
