@@ -605,7 +605,7 @@ def _wilson(k: int, n: int, z: float = 1.959963984540054) -> tuple[float, float]
     den = 1.0 + z * z / n
     mid = (p + z * z / (2 * n)) / den
     half = z * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / den
-    return mid - half, mid + half
+    return max(0.0, min(p, mid - half)), min(1.0, max(p, mid + half))
 
 
 def _promised_blank_rate(lod_method: str, n_blank: int, m: int, k_lod: float = 3.0) -> float:
@@ -1014,7 +1014,8 @@ def render_validation_plot(result: ValidationResult, *, dpi: int = 100) -> bytes
     lo_w, hi_w = bl["wilson_95"]
     if math.isfinite(lo_w):
         ax.errorbar([0], [bl["fraction_above_lod"]],
-                    yerr=[[bl["fraction_above_lod"] - lo_w], [hi_w - bl["fraction_above_lod"]]],
+                    yerr=[[max(0.0, bl["fraction_above_lod"] - lo_w)],
+                          [max(0.0, hi_w - bl["fraction_above_lod"])]],
                     color="k", capsize=4)
     ax.axhline(TARGETS["blank_above_lod_max"], color="k", linestyle="--", linewidth=1.0)
     ax.set_xticks([0, 1], ["blanks at/above LOD\n(measured)", "promised by the\nLOD rule"],
