@@ -87,6 +87,8 @@ class BenchConfig:
     bootstrap_draws : int
     repeats : int
         Times each timed pair (baseline, pipeline) is run; the best of each is kept.
+    batch_repeats : int
+        The same for the batch pair (1 worker, 2 workers), the slowest part.
     """
 
     name: str
@@ -107,13 +109,14 @@ class BenchConfig:
     batch_spacing_px: float
     bootstrap_draws: int = 2000
     repeats: int = 2
+    batch_repeats: int = 1
 
     def key(self) -> str:
         """Short hash of everything that decides the inputs."""
         from ecl_quant import __version__
         from ecl_quant.simulate import SIMULATOR_VERSION
 
-        doc = {k: v for k, v in asdict(self).items() if k not in ("repeats",)}
+        doc = {k: v for k, v in asdict(self).items() if k not in ("repeats", "batch_repeats")}
         doc.update(inputs=INPUTS_VERSION, simulator=SIMULATOR_VERSION, preset=VIDEO_PRESET,
                    ecl_quant=__version__)
         text = json.dumps(doc, sort_keys=True)

@@ -359,7 +359,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         "video": lambda: bench_video(inp, repeats, rep, log),
         "stills": lambda: bench_stills(inp, repeats, rep, log),
         "memory": lambda: bench_memory(inp, rep, log),
-        "batch": lambda: bench_batch(inp, repeats, rep, log, args.cache / "scratch"),
+        "batch": lambda: bench_batch(inp, args.repeats or cfg.batch_repeats, rep, log,
+                                     args.cache / "scratch"),
         "calibration": lambda: bench_calibration(inp, cfg.bootstrap_draws, rep, log),
     }
     timings: dict[str, float] = {"inputs_s": t_inputs}
