@@ -1548,7 +1548,7 @@ def _execute(jobs: Sequence[_Job], settings: BatchSettings, *, client: Any | Non
     n = len(jobs)
     outcomes: list[RecordingOutcome | None] = [None] * n
     bar = tqdm(total=n, desc="recordings", unit="rec", file=sys.stderr,
-               disable=not settings.progress, leave=False, dynamic_ncols=True)
+               disable=(not settings.progress) or None, leave=False, dynamic_ncols=True)
 
     def say(line: str) -> None:
         if status is not None:

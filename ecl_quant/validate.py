@@ -887,7 +887,7 @@ def run_validation(settings: ValidationSettings = ValidationSettings(), *,
     batches: list[dict[str, Any]] = []
     try:
         bar = tqdm(total=len(jobs), desc="validate", unit="batch", file=sys.stderr,
-                   disable=not progress, leave=False)
+                   disable=(not progress) or None, leave=False)
         with bar:
             if settings.workers == 1 or len(jobs) == 1:
                 for job in jobs:
