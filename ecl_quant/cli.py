@@ -547,7 +547,10 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"ecl-quant {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
-    for _name, add in _COMMANDS:
+    # Pipeline order in --help: one recording, tables, many recordings, then tools.
+    order = ["measure", "calibrate", "quantify", "batch", "camera", "simulate", "validate"]
+    rank = {name: i for i, name in enumerate(order)}
+    for _name, add in sorted(_COMMANDS, key=lambda c: rank.get(c[0], len(order))):
         add(sub)
     return parser
 
