@@ -17,7 +17,7 @@ from typing import IO, Any
 
 from .errors import OutputError
 
-__all__ = ["atomic_write", "write_text_atomic", "write_json_atomic", "sha256_file", "ensure_dir",
+__all__ = ["to_jsonable", "atomic_write", "write_text_atomic", "write_json_atomic", "sha256_file", "ensure_dir",
            "check_overwrite"]
 
 
@@ -73,6 +73,32 @@ def write_text_atomic(path: str | Path, text: str) -> None:
 def write_json_atomic(path: str | Path, obj: Any) -> None:
     """Write ``obj`` as indented JSON to ``path`` atomically."""
     write_text_atomic(path, json.dumps(obj, indent=2, sort_keys=False, default=_json_default) + "\n")
+
+
+def to_jsonable(obj: Any, *, nonfinite_to_null: bool = True) -> Any:
+    """A plain-JSON copy of ``obj``: dicts (string keys), lists, str, int, float, bool, None.
+
+    numpy scalars and arrays become Python values and lists; any other object (Path,
+    Fraction, ...) becomes its ``str``. Non-finite floats become None unless
+    ``nonfinite_to_null`` is False (strict JSON has no NaN or Infinity).
+    """
+    import math
+
+    import numpy as np
+
+    if isinstance(obj, dict):
+        return {str(k): to_jsonable(v, nonfinite_to_null=nonfinite_to_null) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [to_jsonable(v, nonfinite_to_null=nonfinite_to_null) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return to_jsonable(obj.tolist(), nonfinite_to_null=nonfinite_to_null)
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float):
+        return None if nonfinite_to_null and not math.isfinite(obj) else obj
+    if isinstance(obj, (str, int, bool)) or obj is None:
+        return obj
+    return str(obj)
 
 
 def _json_default(obj: Any) -> Any:

@@ -42,7 +42,7 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
-from ._io import atomic_write, ensure_dir, sha256_file
+from ._io import atomic_write, ensure_dir, sha256_file, to_jsonable
 from .curves import (
     CurveMetrics,
     CurveSettings,
@@ -771,13 +771,13 @@ def _provenance(rec: Any, settings: MeasureSettings, choice: dict[str, str],
     inputs: dict[str, Any] = {
         "recording": {"path": str(rec.path), "kind": rec.kind, "shape": list(rec.shape),
                       "n_frames": n_frames, "files": _file_entries(files),
-                      "metadata": _jsonable(dict(rec.metadata))}}
+                      "metadata": to_jsonable(dict(rec.metadata))}}
     if dark_path is not None:
         inputs["dark"] = {"path": str(dark_path), "files": _file_entries(_dark_files(dark_path)),
                           "n_frames": master.n_frames, "method": master.method}
     elif master is not None:
         inputs["dark"] = {"path": None, "n_frames": master.n_frames, "method": master.method,
-                          "provenance": _jsonable(dict(master.provenance))}
+                          "provenance": to_jsonable(dict(master.provenance))}
     if spot_path is not None:
         inputs["spots"] = _file_entries([spot_path])[0] if spot_path.is_file() else str(spot_path)
     frames_total = float(timings.get("total_s", time.perf_counter() - t_start))
@@ -790,8 +790,8 @@ def _provenance(rec: Any, settings: MeasureSettings, choice: dict[str, str],
         "spots_source": "file" if spot_path is not None else
                         ("given" if not detection else "detected"),
         "n_spots": n_spots,
-        "detection": _jsonable(detection),
-        "analysis": _jsonable(analysis),
+        "detection": to_jsonable(detection),
+        "analysis": to_jsonable(analysis),
         "versions": _versions(),
         "timings": {**{k: round(v, 4) for k, v in timings.items()},
                     "frames_per_s": round(n_frames * max(1, 1 + bool(detection)) / frames_total, 2)
@@ -799,21 +799,6 @@ def _provenance(rec: Any, settings: MeasureSettings, choice: dict[str, str],
         "cautions": "Research measurement, not a certified analytical method.",
     }
 
-
-def _jsonable(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, np.generic):
-        return obj.item()
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    if isinstance(obj, (str, int, float, bool)) or obj is None:
-        return obj
-    return str(obj)
 
 
 # ------------------------------------------------------------------ outputs
@@ -978,7 +963,7 @@ def write_measure_outputs(result: MeasureResult, out_dir: str | Path, *,
     run = dict(result.provenance)
     run["outputs"] = list(OUTPUT_FILES)
     run["written_utc"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
-    contents["run.json"] = (json.dumps(_jsonable(run), indent=2) + "\n").encode()
+    contents["run.json"] = (json.dumps(to_jsonable(run), indent=2) + "\n").encode()
     ensure_dir(out)
     # A marker first, run.json removed, run.json written last, marker removed: a process
     # killed mid-way leaves no mix of two runs that looks complete, and the rerun knows

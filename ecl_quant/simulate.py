@@ -67,7 +67,7 @@ from typing import Any, Literal
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from ._io import atomic_write, ensure_dir, write_json_atomic
+from ._io import atomic_write, ensure_dir, to_jsonable, write_json_atomic
 from .errors import InputFormatError, OutputError, SpotError
 from .transfer import bt709_encode, srgb_encode
 
@@ -720,17 +720,7 @@ _UNITS = {
 
 
 def _jsonable(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, np.generic):
-        return obj.item()
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
-    if isinstance(obj, Path):
-        return str(obj)
-    return obj
+    return to_jsonable(obj, nonfinite_to_null=False)
 
 
 # -------------------------------------------------------------------- timing & drift

@@ -59,7 +59,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ._io import atomic_write, ensure_dir, write_json_atomic
+from ._io import atomic_write, ensure_dir, to_jsonable, write_json_atomic
 from .errors import InputFormatError, OutputError
 
 __all__ = [
@@ -1033,17 +1033,6 @@ def render_validation_plot(result: ValidationResult, *, dpi: int = 100) -> bytes
     return buf.getvalue()
 
 
-def _jsonable(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, np.generic):
-        return _jsonable(obj.item())
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj
-
 
 def write_validation_outputs(result: ValidationResult, out_dir: str | Path) -> list[Path]:
     """Write summary.json, spots.csv, samples.csv and validation.png (atomically).
@@ -1058,7 +1047,7 @@ def write_validation_outputs(result: ValidationResult, out_dir: str | Path) -> l
         raise OutputError("exists and is not a folder; choose another --out", path=out)
     ensure_dir(out)
     written = []
-    doc = {"summary": _jsonable(result.summary), "provenance": _jsonable(result.provenance)}
+    doc = {"summary": to_jsonable(result.summary), "provenance": to_jsonable(result.provenance)}
     write_json_atomic(out / "summary.json", doc)
     written.append(out / "summary.json")
     for name, df in (("spots.csv", result.spots), ("samples.csv", result.samples)):
