@@ -1284,7 +1284,8 @@ def photon_transfer(
         levels.append(LevelMeasurement(exposure_s=float(t[i]), flat=flat, dark=dark,
                                        level=float(lvl[i]),
                                        photons=None if p is None else float(p[i])))
-    return analyse_photon_transfer(levels, settings=settings)
+    return analyse_photon_transfer(levels, settings=settings,
+                                   provenance={"max_code": float(max_code)})
 
 
 def _pair_of(images: Sequence[ArrayLike], what: str, max_code: float | None) -> PairStatistics:

@@ -411,6 +411,10 @@ def _add_measure(sub: argparse._SubParsersAction) -> None:
                    "Gaussian (default: threshold)")
     p.add_argument("--no-drift", action="store_true",
                    help="do not register frames (tripod recordings)")
+    p.add_argument("--noise-from", metavar="CAMERA_JSON", default=None,
+                   help="take read noise and gain from a camera.json written by "
+                   "'ecl-quant camera' on the same linear readout (default: estimate them "
+                   "from the recording)")
     p.add_argument("--force", action="store_true",
                    help="write into an existing non-empty --out folder (replacing its files)")
     p.add_argument("--json", action="store_true",
@@ -436,8 +440,14 @@ def _run_measure(args: argparse.Namespace) -> int:
     src = Path(args.input)
     out = Path(args.out) if args.out else Path(f"measure-{src.stem if src.suffix else src.name}")
     check_output_dir(out, force=args.force)
+    noise: dict[str, object] = {}
+    if args.noise_from:
+        from .radiometry import camera_noise_model
+
+        read_var, gain, source = camera_noise_model(args.noise_from)
+        noise = {"read_var": read_var, "gain": gain, "noise_source": source}
     settings = MeasureSettings(channel=args.channel, transfer=args.transfer, fps=args.fps,
-                               detect=args.detect, drift=not args.no_drift)
+                               detect=args.detect, drift=not args.no_drift, **noise)
     result = measure(src, spots=args.spots, dark=args.dark, settings=settings,
                      progress=not args.quiet)
     if len(result.spot_set) == 0:

@@ -135,6 +135,9 @@ class MeasureSettings:
         Per-pixel read variance, FS^2 (per frame); with ``gain``, replaces the estimate.
     gain : float or None
         Electrons per full scale.
+    noise_source : str
+        Where ``read_var`` and ``gain`` came from (recorded in run.json), e.g. the
+        camera.json they were read from by :func:`ecl_quant.radiometry.camera_noise_model`.
     saturation_level : float
         Fraction of the encoded maximum counted as saturated.
     per_exposure : bool
@@ -177,6 +180,7 @@ class MeasureSettings:
     max_shift_px: float = 20.0
     read_var: float | None = None
     gain: float | None = None
+    noise_source: str = "given"
     saturation_level: float = 0.98
     per_exposure: bool = True
     exposure_s: float | None = None
@@ -642,7 +646,7 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
 
     # ---------------------------------------------------------- noise, signals, metrics
     if settings.read_var is not None and settings.gain is not None:
-        noise = NoiseModel(float(settings.read_var), float(settings.gain), "given", 0)
+        noise = NoiseModel(float(settings.read_var), float(settings.gain), settings.noise_source, 0)
     else:
         noise = estimate_noise_model(*integ.noise_observations())
     exp = np.array([e if e is not None else (settings.exposure_s or math.nan) for e in exposures])

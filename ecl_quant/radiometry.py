@@ -61,6 +61,7 @@ from .transfer import (
 )
 
 __all__ = [
+    "camera_noise_model",
     "CHANNELS",
     "LinearSettings",
     "MasterDark",
@@ -1266,3 +1267,61 @@ def normalise_exposure(values: ArrayLike, exposure_s: float | None, *,
     v *= np.float32(factor)
     return v
 
+
+
+def camera_noise_model(path: str | Path, *, full_scale_dn: float | None = None
+                       ) -> tuple[float, float, str]:
+    """Read noise and gain in linear full-scale units from an EMVA 1288 camera.json.
+
+    With system gain K (DN/e-), temporal dark variance sigma_y.dark^2 (DN^2) and the
+    full-scale code D (``max_code`` of the analysis), a pixel's variance in full-scale
+    units is ``sigma_y.dark^2 / D^2 + level / (D / K)``: read variance
+    ``sigma_y.dark^2 / D^2`` (FS^2) and gain ``D / K`` electrons per full scale
+    (EMVA 1288 Release 4.0 Linear, Eqs. 14-15, rescaled by D). Valid for recordings of
+    the same linear readout (raw or linear 16-bit) at the same ISO.
+
+    Parameters
+    ----------
+    path : str or Path
+        camera.json written by ``ecl-quant camera``.
+    full_scale_dn : float, optional
+        Full-scale code D; default: the ``max_code`` recorded in the file.
+
+    Returns
+    -------
+    read_var : float
+        FS^2 per frame.
+    gain : float
+        Electrons per full scale.
+    source : str
+        A description for run.json.
+
+    Raises
+    ------
+    InputFormatError
+        Not a readable camera.json, or its gain, dark variance or full scale is missing.
+    """
+    p = Path(path)
+    try:
+        doc = json.loads(p.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as err:
+        raise InputFormatError(f"not a readable camera.json ({err}); write one with "
+                               "'ecl-quant camera FOLDER --out DIR'", path=p) from err
+    if not isinstance(doc, dict) or doc.get("standard", "").find("EMVA 1288") < 0:
+        raise InputFormatError("not a camera.json of 'ecl-quant camera' (no EMVA 1288 "
+                               "figures)", path=p)
+    prov = doc.get("provenance") if isinstance(doc.get("provenance"), dict) else {}
+    k, var = doc.get("system_gain_dn_per_e"), doc.get("dark_variance_dn2")
+    d = full_scale_dn if full_scale_dn is not None else prov.get("max_code")
+    for name, value in (("system_gain_dn_per_e", k), ("dark_variance_dn2", var),
+                        ("max_code (full scale)", d)):
+        if not isinstance(value, (int, float)) or isinstance(value, bool) \
+                or not np.isfinite(value) or value < 0 or (name != "dark_variance_dn2"
+                                                           and value == 0):
+            raise InputFormatError(f"{name} is missing or not a positive number; rerun "
+                                   "'ecl-quant camera' (with --max-code for the full scale)",
+                                   path=p)
+    read_var = float(var) / float(d) ** 2
+    gain = float(d) / float(k)
+    return read_var, gain, (f"camera profile {p.name}: K = {float(k):.4g} DN/e-, "
+                            f"sigma_y.dark^2 = {float(var):.4g} DN^2, full scale {float(d):g} DN")
