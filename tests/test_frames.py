@@ -24,6 +24,7 @@ import rawpy
 import tifffile
 from PIL import ExifTags, Image, ImageOps, TiffImagePlugin
 
+from _media import write_dng, write_yuv_video
 from ecl_quant.errors import InputFormatError, ShapeMismatchError, TimingWarning
 from ecl_quant.frames import (
     DEFAULT_MAX_PIXELS,
@@ -37,42 +38,6 @@ from ecl_quant.frames import (
 # ----------------------------------------------------------------------------- helpers
 
 
-def write_yuv_video(path, planes, *, pix_fmt="yuv420p", codec="libx264", pts=None,
-                    time_base=None, rotation=None, colorspace=None, color_range=None,
-                    options=None, rate=30):
-    """Encode frames given as (Y, Cb, Cr) uint8 planes with PyAV (reference encoder)."""
-    h, w = planes[0][0].shape
-    out = av.open(str(path), "w")
-    stream = out.add_stream(codec, rate=rate)
-    stream.width, stream.height, stream.pix_fmt = w, h, pix_fmt
-    if options:
-        stream.options = options
-    if time_base is not None:
-        stream.time_base = time_base
-        stream.codec_context.time_base = time_base
-    if colorspace is not None:
-        stream.codec_context.colorspace = colorspace
-    if color_range is not None:
-        stream.codec_context.color_range = color_range
-    if rotation is not None:
-        stream.set_display_rotation(rotation)
-    for i, trio in enumerate(planes):
-        frame = av.VideoFrame(w, h, pix_fmt)
-        for plane, arr in zip(frame.planes, trio):
-            buf = np.frombuffer(plane, np.uint8).reshape(plane.height, plane.line_size)
-            buf[:, : plane.width] = arr
-        if colorspace is not None:
-            frame.colorspace = colorspace
-        if color_range is not None:
-            frame.color_range = color_range
-        frame.pts = pts[i] if pts is not None else i
-        if time_base is not None:
-            frame.time_base = time_base
-        for packet in stream.encode(frame):
-            out.mux(packet)
-    for packet in stream.encode():
-        out.mux(packet)
-    out.close()
 
 
 def random_planes(rng, h, w, n, sub=(2, 2)):
@@ -115,24 +80,6 @@ def save_jpeg_with_exif(path, arr, *, exposure=None, iso=None, when=None, subsec
     Image.fromarray(arr).save(path, exif=exif, quality=quality)
 
 
-def write_dng(path, mosaic, *, black=(64, 64, 64, 64), white=1023, cfa=(0, 1, 1, 2),
-              exposure=(1, 50), iso=200):
-    """Minimal DNG written with tifffile (CAMERA_NOTES 5: rawpy reads it bit-exactly)."""
-    extratags = [
-        (50706, "B", 4, (1, 4, 0, 0)),  # DNGVersion
-        (33421, "H", 2, (2, 2)),  # CFARepeatPatternDim
-        (33422, "B", 4, cfa),  # CFAPattern
-        (50713, "H", 2, (2, 2)),  # BlackLevelRepeatDim
-        (50714, "H", 4, black),  # BlackLevel (per position in the 2x2 cell)
-        (50717, "H", 1, white),  # WhiteLevel
-        (33434, "2I", 1, exposure),  # ExposureTime
-        (34855, "H", 1, iso),  # ISOSpeedRatings
-        (271, "s", 5, "Tern\x00"),  # Make (LibRaw needs it)
-        (272, "s", 5, "Cam1\x00"),  # Model
-        (50708, "s", 6, "Test\x00"),  # UniqueCameraModel
-        (50721, "2i", 9, (1, 1, 0, 1, 0, 1) * 3),  # ColorMatrix1 (identity)
-    ]
-    tifffile.imwrite(path, mosaic, photometric=32803, extratags=extratags, subfiletype=0)
 
 
 def png_header_only(path, width, height):

@@ -21,6 +21,7 @@ from av.video.reformatter import Interpolation
 from PIL import Image
 from scipy import stats
 
+from _media import write_dng, write_yuv_video
 from ecl_quant.errors import InputFormatError, ShapeMismatchError
 from ecl_quant.frames import Frame, open_recording
 from ecl_quant.radiometry import (
@@ -45,39 +46,6 @@ from ecl_quant.transfer import TransferSpec
 # ----------------------------------------------------------------------------- fixtures
 
 
-def write_yuv_video(path, planes, *, pix_fmt="yuv420p", codec="libx264", colorspace=None,
-                    color_range=None, options=None, pts=None, time_base=None):
-    """PyAV (FFmpeg) as the reference encoder of given (Y, Cb, Cr) planes."""
-    h, w = planes[0][0].shape
-    out = av.open(str(path), "w")
-    s = out.add_stream(codec, rate=30)
-    s.width, s.height, s.pix_fmt = w, h, pix_fmt
-    if options:
-        s.options = options
-    if time_base is not None:
-        s.time_base = time_base
-        s.codec_context.time_base = time_base
-    if colorspace is not None:
-        s.codec_context.colorspace = colorspace
-    if color_range is not None:
-        s.codec_context.color_range = color_range
-    for i, trio in enumerate(planes):
-        f = av.VideoFrame(w, h, pix_fmt)
-        for plane, arr in zip(f.planes, trio):
-            buf = np.frombuffer(plane, np.uint8).reshape(plane.height, plane.line_size)
-            buf[:, : plane.width] = arr
-        if colorspace is not None:
-            f.colorspace = colorspace
-        if color_range is not None:
-            f.color_range = color_range
-        f.pts = pts[i] if pts is not None else i
-        if time_base is not None:
-            f.time_base = time_base
-        for pk in s.encode(f):
-            out.mux(pk)
-    for pk in s.encode():
-        out.mux(pk)
-    out.close()
 
 
 def patch_planes(rng, n_patch=4, size=16):
@@ -91,21 +59,6 @@ def patch_planes(rng, n_patch=4, size=16):
     return y, cb, cr
 
 
-def write_dng(path, mosaic, *, black=(64, 64, 64, 64), white=1023, cfa=(0, 1, 1, 2)):
-    """Minimal DNG written with tifffile (CAMERA_NOTES 5; rawpy reads it bit-exactly)."""
-    extratags = [
-        (50706, "B", 4, (1, 4, 0, 0)),
-        (33421, "H", 2, (2, 2)),
-        (33422, "B", 4, cfa),
-        (50713, "H", 2, (2, 2)),
-        (50714, "H", 4, black),
-        (50717, "H", 1, white),
-        (271, "s", 5, "Tern\x00"),
-        (272, "s", 5, "Cam1\x00"),
-        (50708, "s", 6, "Test\x00"),
-        (50721, "2i", 9, (1, 1, 0, 1, 0, 1) * 3),
-    ]
-    tifffile.imwrite(path, mosaic, photometric=32803, extratags=extratags, subfiletype=0)
 
 
 def still_frame(data, **kw):
