@@ -66,6 +66,10 @@ DEFAULT_MAX_PIXELS = 100_000_000
 STILL_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff")
 RAW_SUFFIXES = (".dng",)
 VIDEO_SUFFIXES = (".mp4", ".mov", ".m4v", ".avi", ".mkv", ".webm", ".3gp")
+#: Stills and DNGs decoded ahead of the consumer on one background thread (Pillow,
+#: OpenCV and LibRaw release the GIL while they decode, so decoding the next file
+#: overlaps the processing of this one); 0 decodes in the consumer's thread.
+READ_AHEAD = 2
 
 # EXIF tag numbers (EXIF 2.32 / TIFF 6.0).
 _TAG_ORIENTATION = 0x0112
@@ -504,9 +508,18 @@ def _check_png_chunks(data: memoryview, path: Path) -> None:
     )
 
 
-def _decode_still(header: _StillHeader) -> NDArray[Any]:
-    """Decode one still to (H, W) or (H, W, 3) uint8/uint16 RGB, orientation applied."""
-    import cv2
+def _jpeg_error(path: Path, err: Exception) -> InputFormatError:
+    return InputFormatError(
+        f"JPEG cannot be decoded ({err}); the file is truncated or damaged: copy "
+        "it again from the camera or remove it",
+        path=path,
+    )
+
+
+def _open_still(header: _StillHeader) -> tuple[_StillHeader, Any]:
+    """First half of decoding a still, run in the consumer's thread: open the JPEG
+    (Pillow parses its header and may warn, and warning filters are process-wide, not
+    per thread) or read and check the PNG/TIFF bytes."""
     from PIL import Image
 
     path = Path(header.path)
@@ -515,24 +528,35 @@ def _decode_still(header: _StillHeader) -> NDArray[Any]:
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")  # see read_exif
-                with Image.open(path) as im:
-                    if im.mode not in ("L", "RGB"):
-                        im = im.convert("RGB")
-                    arr = np.asarray(im)
+                return header, Image.open(path)
         except (OSError, ValueError, SyntaxError) as err:
-            raise InputFormatError(
-                f"JPEG cannot be decoded ({err}); the file is truncated or damaged: copy "
-                "it again from the camera or remove it",
-                path=path,
-            ) from err
-    else:
+            raise _jpeg_error(path, err) from err
+    try:
+        buf = np.fromfile(path, dtype=np.uint8)
+    except OSError as err:
+        raise InputFormatError(f"cannot read the file ({err})", path=path) from err
+    if header.fmt == "PNG":
+        _check_png_chunks(memoryview(buf), path)
+    return header, buf
+
+
+def _decode_opened(opened: tuple[_StillHeader, Any]) -> NDArray[Any]:
+    """Decode an opened still (:func:`_open_still`) to (H, W) or (H, W, 3) uint8/uint16
+    RGB, orientation applied. Thread-safe: no warning filters touched."""
+    import cv2
+
+    header, handle = opened
+    path = Path(header.path)
+    if header.fmt in ("JPEG", "MPO"):
         try:
-            buf = np.fromfile(path, dtype=np.uint8)
-        except OSError as err:
-            raise InputFormatError(f"cannot read the file ({err})", path=path) from err
-        if header.fmt == "PNG":
-            _check_png_chunks(memoryview(buf), path)
-        arr = cv2.imdecode(buf, cv2.IMREAD_UNCHANGED)
+            with handle as im:
+                if im.mode not in ("L", "RGB"):
+                    im = im.convert("RGB")
+                arr = np.asarray(im)
+        except (OSError, ValueError, SyntaxError) as err:
+            raise _jpeg_error(path, err) from err
+    else:
+        arr = cv2.imdecode(handle, cv2.IMREAD_UNCHANGED)
         if arr is None:
             raise InputFormatError(
                 f"{header.fmt or 'image'} cannot be decoded; the file is truncated or "
@@ -562,6 +586,61 @@ def _decode_still(header: _StillHeader) -> NDArray[Any]:
         arr = _apply_orientation(arr, header.exif.orientation)
     arr.flags.writeable = False
     return arr
+
+
+def _read_ahead(decode: Any, items: Sequence[Any], depth: int | None = None, *,
+                prepare: Any = None) -> Iterator[tuple[Any, Any]]:
+    """``(item, decode(prepare(item)))`` in order, with up to ``depth`` decodes ahead.
+
+    One background thread decodes while the consumer works on the previous result, so
+    at most ``depth + 1`` decoded frames exist at a time. ``prepare`` (default: none)
+    runs in the consumer's thread when an item is queued: anything that touches
+    process-wide state such as warning filters belongs there; what it returns is
+    closed (if it can be) when its decode is cancelled. An exception from either is
+    raised where its item would have been yielded (the frames before it come out
+    first, as without read-ahead). Closing the generator early cancels what was queued
+    and waits for the decode in progress. ``depth`` 0 (or one item) decodes inline.
+    """
+    depth = READ_AHEAD if depth is None else int(depth)
+
+    def prep(item: Any) -> Any:
+        return item if prepare is None else prepare(item)
+
+    if depth <= 0 or len(items) <= 1:
+        for item in items:
+            yield item, decode(prep(item))
+        return
+    from collections import deque
+    from concurrent.futures import Future, ThreadPoolExecutor
+
+    pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="ecl-quant-read")
+    pending: deque[tuple[Future[Any], Any]] = deque()
+    try:
+        nxt = 0
+        for item in items:
+            while nxt < len(items) and len(pending) < depth + 1:
+                fut: Future[Any]
+                try:
+                    ready = prep(items[nxt])
+                    fut = pool.submit(decode, ready)
+                except Exception as err:  # raised in order, once the earlier items are out
+                    ready, fut = None, Future()
+                    fut.set_exception(err)
+                    nxt = len(items)
+                    pending.append((fut, ready))
+                    break
+                pending.append((fut, ready))
+                nxt += 1
+            fut, _ = pending.popleft()
+            yield item, fut.result()
+    finally:
+        for fut, _ in pending:
+            fut.cancel()
+        pool.shutdown(wait=True)
+        for fut, ready in pending:
+            handle = ready[-1] if isinstance(ready, tuple) else ready
+            if fut.cancelled() and hasattr(handle, "close"):
+                handle.close()  # opened but never decoded: release the file
 
 
 # ----------------------------------------------------------------------------- Recording
@@ -627,52 +706,59 @@ class Recording:
     # -- stills
     def _still_frames(self) -> Iterator[Frame]:
         first: tuple[tuple[int, ...], np.dtype[Any], str] | None = None
-        for i, header in enumerate(self._headers):
-            arr = _decode_still(header)
-            if first is None:
-                first = (arr.shape, arr.dtype, header.path)
-                if arr.shape[:2] != self.shape:
-                    raise ShapeMismatchError(
-                        f"decoded size {arr.shape[1]}x{arr.shape[0]} differs from the "
-                        f"header's {self.shape[1]}x{self.shape[0]}; re-export the image",
-                        path=header.path,
-                    )
-            else:
-                _check_same(arr, first, header.path)
-            yield Frame(
-                index=i,
-                time_s=self._times_s[i],
-                data=arr,
-                max_code=float(np.iinfo(arr.dtype).max),
-                source=header.path,
-                kind="still",
-                exposure_s=header.exif.exposure_s,
-                iso=header.exif.iso,
-                bit_depth=8 * arr.dtype.itemsize,
-            )
+        stills = _read_ahead(_decode_opened, self._headers, prepare=_open_still)
+        try:
+            for i, (header, arr) in enumerate(stills):
+                if first is None:
+                    first = (arr.shape, arr.dtype, header.path)
+                    if arr.shape[:2] != self.shape:
+                        raise ShapeMismatchError(
+                            f"decoded size {arr.shape[1]}x{arr.shape[0]} differs from the "
+                            f"header's {self.shape[1]}x{self.shape[0]}; re-export the image",
+                            path=header.path,
+                        )
+                else:
+                    _check_same(arr, first, header.path)
+                yield Frame(
+                    index=i,
+                    time_s=self._times_s[i],
+                    data=arr,
+                    max_code=float(np.iinfo(arr.dtype).max),
+                    source=header.path,
+                    kind="still",
+                    exposure_s=header.exif.exposure_s,
+                    iso=header.exif.iso,
+                    bit_depth=8 * arr.dtype.itemsize,
+                )
+        finally:
+            stills.close()
 
     # -- raw
     def _raw_frames(self) -> Iterator[Frame]:
         first: tuple[tuple[int, ...], np.dtype[Any], str] | None = None
-        for i, header in enumerate(self._headers):
-            mosaic, cfa, black, white, _other = _read_dng(Path(header.path), self._max_pixels)
-            if first is None:
-                first = (mosaic.shape, mosaic.dtype, header.path)
-            else:
-                _check_same(mosaic, first, header.path)
-            yield Frame(
-                index=i,
-                time_s=self._times_s[i],
-                data=mosaic,
-                max_code=float(white),
-                source=header.path,
-                kind="raw",
-                exposure_s=header.exif.exposure_s,
-                iso=header.exif.iso,
-                black_level=black,
-                cfa=cfa,
-                bit_depth=self.bit_depth,
-            )
+        limit = self._max_pixels
+        dngs = _read_ahead(lambda h: _read_dng(Path(h.path), limit), self._headers)
+        try:
+            for i, (header, (mosaic, cfa, black, white, _other)) in enumerate(dngs):
+                if first is None:
+                    first = (mosaic.shape, mosaic.dtype, header.path)
+                else:
+                    _check_same(mosaic, first, header.path)
+                yield Frame(
+                    index=i,
+                    time_s=self._times_s[i],
+                    data=mosaic,
+                    max_code=float(white),
+                    source=header.path,
+                    kind="raw",
+                    exposure_s=header.exif.exposure_s,
+                    iso=header.exif.iso,
+                    black_level=black,
+                    cfa=cfa,
+                    bit_depth=self.bit_depth,
+                )
+        finally:
+            dngs.close()
 
     # -- video
     def _video_frames(self) -> Iterator[Frame]:

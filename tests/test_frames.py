@@ -591,6 +591,70 @@ def test_stills_memory_stays_flat(tmp_path):
     assert peak < 20 * frame_bytes  # 200 frames held would be 200 x frame_bytes
 
 
+def test_read_ahead_gives_the_same_frames_in_order_as_inline_decoding(tmp_path, monkeypatch):
+    # Contract of the read-ahead (common practice for producer/consumer pipelines): the
+    # frames, their order and their pixels are those of decoding one file at a time.
+    from ecl_quant import frames as frames_mod
+
+    rng = np.random.default_rng(31)
+    for i in range(9):
+        save_jpeg_with_exif(tmp_path / f"f{i}.jpg", rng.integers(0, 255, (40, 48, 3), np.uint8),
+                            exposure=(1, 30), iso=100, when="2024:05:01 10:00:00",
+                            subsec=str(i))
+    rec = open_recording(tmp_path)
+    threaded = [(fr.source, fr.data.copy()) for fr in rec.frames()]
+    monkeypatch.setattr(frames_mod, "READ_AHEAD", 0)
+    inline = [(fr.source, fr.data.copy()) for fr in rec.frames()]
+    assert [s for s, _ in threaded] == [s for s, _ in inline]
+    assert [Path(s).name for s, _ in threaded] == [f"f{i}.jpg" for i in range(9)]
+    for (_, a), (_, b) in zip(threaded, inline):
+        np.testing.assert_array_equal(a, b)
+    # Pillow (reference decoder) on the fifth file.
+    with Image.open(tmp_path / "f4.jpg") as im:
+        np.testing.assert_array_equal(threaded[4][1], np.asarray(im))
+
+
+def test_read_ahead_raises_a_bad_file_in_its_place(tmp_path):
+    # Frames before a damaged file come out first, then its typed error (as without
+    # read-ahead), even though the damaged file was decoded ahead of the consumer.
+    rng = np.random.default_rng(32)
+    for i in range(6):
+        Image.fromarray(rng.integers(0, 255, (32, 32, 3), np.uint8)).save(tmp_path / f"s{i}.jpg")
+    data = (tmp_path / "s3.jpg").read_bytes()
+    (tmp_path / "s3.jpg").write_bytes(data[: len(data) // 2])
+    seen = []
+    with pytest.raises(InputFormatError, match="truncated") as info:
+        for fr in open_recording(tmp_path, fps=10).frames():
+            seen.append(Path(fr.source).name)
+    assert seen == ["s0.jpg", "s1.jpg", "s2.jpg"]
+    assert info.value.path.endswith("s3.jpg")
+
+
+def test_read_ahead_stops_cleanly_when_the_consumer_stops(tmp_path):
+    # Closing the generator early must cancel the queued decodes, join the worker and
+    # close the files it opened (threading docs: no lingering reader thread).
+    import threading
+
+    rng = np.random.default_rng(33)
+    for i in range(30):
+        Image.fromarray(rng.integers(0, 255, (32, 32), np.uint8)).save(tmp_path / f"s{i:02d}.jpg")
+    gen = open_recording(tmp_path, fps=10).frames()
+    first = next(gen)
+    assert Path(first.source).name == "s00.jpg"
+    gen.close()
+    assert not [t for t in threading.enumerate() if t.name.startswith("ecl-quant-read")]
+    # No file of the folder is still open (Linux /proc/self/fd, proc(5)).
+    fds = Path("/proc/self/fd")
+    if fds.is_dir():
+        open_files = []
+        for fd in fds.iterdir():
+            try:
+                open_files.append(os.readlink(fd))
+            except OSError:
+                continue
+        assert not [f for f in open_files if f.startswith(str(tmp_path))]
+
+
 # ----------------------------------------------------------------------------- robustness
 
 from hypothesis import HealthCheck, given, settings  # noqa: E402
