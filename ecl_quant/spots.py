@@ -41,6 +41,7 @@ import cv2
 import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
+from scipy import fft as sp_fft
 from scipy import ndimage
 
 from ._io import write_json_atomic
@@ -1087,8 +1088,10 @@ def isolated_pixels(image: NDArray[np.floating], *, k_sigma: float = 8.0) -> NDA
 def drift_plane(frame: Any, channel: str = "luma") -> NDArray[np.generic]:
     """The single 2-D plane of a frame that drift is measured on (no copy).
 
-    Video: the luma plane Y'. RGB stills: the requested colour plane (green for luma).
-    Grey stills and raw mosaics: the data itself.
+    Video: the luma plane Y'. RGB stills: the requested colour plane (green for luma), a
+    strided view of the (H, W, 3) data; :func:`downscale_for_drift` recognises such a
+    view and downscales the interleaved image before taking the channel, so the plane is
+    never copied at full size. Grey stills and raw mosaics: the data itself.
     """
     data = frame.data
     if data.ndim == 3:
@@ -1097,35 +1100,86 @@ def drift_plane(frame: Any, channel: str = "luma") -> NDArray[np.generic]:
     return data  # type: ignore[no-any-return]
 
 
+def _interleaved_parent(plane: NDArray[np.generic]) -> tuple[NDArray[np.generic], int] | None:
+    """The (H, W, C) pixel-interleaved array a 2-D channel view was taken from, and the
+    channel, when ``plane`` is such a view (``data[..., c]``); else None."""
+    if plane.ndim != 2 or plane.strides[1] == plane.itemsize or plane.strides[1] <= 0:
+        return None
+    parent = plane.base
+    if not (isinstance(parent, np.ndarray) and parent.ndim == 3 and parent.dtype == plane.dtype
+            and parent.shape[:2] == plane.shape and parent.strides[:2] == plane.strides
+            and parent.strides[2] == plane.itemsize and 1 < parent.shape[2] <= 4):
+        return None
+    offset = plane.__array_interface__["data"][0] - parent.__array_interface__["data"][0]
+    channel, rest = divmod(offset, plane.itemsize)
+    if rest or not 0 <= channel < parent.shape[2]:
+        return None
+    return parent, int(channel)
+
+
+def _halve(img: NDArray[np.generic]) -> NDArray[np.generic]:
+    """2 x 2 box average (cv2.resize INTER_AREA, even sizes); integer types are rounded."""
+    h, w = img.shape[:2]
+    return cv2.resize(img, (w // 2, h // 2), interpolation=cv2.INTER_AREA)  # type: ignore[return-value]
+
+
 def downscale_for_drift(plane: NDArray[np.generic], factor: int) -> NDArray[np.float32]:
-    """Box-average a plane by an integer ``factor`` (cv2.resize INTER_AREA), as float32."""
-    src = np.ascontiguousarray(plane)
+    """Box-average a plane over ``factor`` x ``factor`` blocks, as float32.
+
+    The output has ``(H // factor, W // factor)`` pixels, each the mean of one block from
+    the top-left (a partial last block row or column is dropped). A factor is split into
+    2 x 2 steps (cv2.resize INTER_AREA, several times faster per pixel than one large
+    area step): the steps before the last two run in the input's integer type (each
+    rounds to the nearest code, an error well below one code after averaging), the last
+    two in float32 (exact). One channel of a pixel-interleaved image (``data[..., c]``,
+    see :func:`drift_plane`) is downscaled together with its neighbours first and
+    taken out afterwards, which avoids a full-size copy.
+    """
+    factor = max(1, int(factor))
+    parent = _interleaved_parent(plane)
+    h, w = plane.shape[:2]
+    hc, wc = (h // factor) * factor, (w // factor) * factor
+    channel = None
+    if parent is not None:
+        src: NDArray[np.generic] = parent[0][:hc, :wc]
+        channel = parent[1]
+    else:
+        src = plane[:hc, :wc]
+        if src.strides[-1] != src.itemsize:
+            src = np.ascontiguousarray(src)
     if src.dtype not in (np.uint8, np.uint16, np.float32):
         src = src.astype(np.float32)
-    h, w = src.shape[:2]
-    if factor <= 1:
-        return src.astype(np.float32)
-    small = cv2.resize(src, (w // factor, h // factor), interpolation=cv2.INTER_AREA)
-    return small.astype(np.float32, copy=False)
+    twos, rest = 0, factor
+    while rest % 2 == 0:
+        twos, rest = twos + 1, rest // 2
+    for _ in range(max(0, twos - 2)):
+        src = _halve(src)
+    if channel is not None:
+        src = cv2.extractChannel(src, channel) if src.shape[2] <= 4 else src[..., channel]
+    small = np.asarray(src, dtype=np.float32)
+    for _ in range(min(twos, 2)):
+        small = _halve(small)
+    if rest > 1:
+        sh, sw = small.shape[:2]
+        small = cv2.resize(small, (sw // rest, sh // rest), interpolation=cv2.INTER_AREA)
+    return np.ascontiguousarray(small, dtype=np.float32)
 
 
-def _refine_shift(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, dy: float,
-                  blur: float) -> tuple[float, float]:
-    """Sub-pixel peak of the cross-correlation at the 3 x 3 integer lags around (dx, dy)."""
-    if blur > 0:
-        a = cv2.GaussianBlur(a, (0, 0), blur)
-        b = cv2.GaussianBlur(b, (0, 0), blur)
+def _refine_blurred(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, dy: float
+                    ) -> tuple[float, float]:
+    """Sub-pixel peak of the cross-correlation of the (already blurred) images ``a`` and
+    ``b`` at the 3 x 3 integer lags around (dx, dy): a parabola through each axis."""
     ix, iy = int(round(dx)), int(round(dy))
     h, w = a.shape
     m = 2 + max(abs(ix), abs(iy))
     if h - 2 * m < 4 or w - 2 * m < 4:
         return dx, dy
-    core = a[m:h - m, m:w - m]
+    core = a[m:h - m, m:w - m].ravel()
     c = np.empty((3, 3))
     for j, ddy in enumerate((-1, 0, 1)):
         for i, ddx in enumerate((-1, 0, 1)):
             sy, sx = iy + ddy, ix + ddx
-            c[j, i] = float(np.vdot(core, b[m + sy:h - m + sy, m + sx:w - m + sx]))
+            c[j, i] = float(np.dot(core, b[m + sy:h - m + sy, m + sx:w - m + sx].ravel()))
 
     def vertex(left: float, mid: float, right: float) -> float | None:
         den = left - 2.0 * mid + right
@@ -1139,18 +1193,103 @@ def _refine_shift(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, dy:
     return (dx if ox is None else ix + ox), (dy if oy is None else iy + oy)
 
 
+def _refine_shift(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, dy: float,
+                  blur: float) -> tuple[float, float]:
+    """Sub-pixel peak of the cross-correlation at the 3 x 3 integer lags around (dx, dy)."""
+    if blur > 0:
+        a = cv2.GaussianBlur(a, (0, 0), blur)
+        b = cv2.GaussianBlur(b, (0, 0), blur)
+    return _refine_blurred(a, b, dx, dy)
+
+
+_FLT_EPS = float(np.finfo(np.float32).eps)
+
+
+class _Prepared:
+    """One image made ready for phase correlation, computed once per frame (and kept
+    with the reference until it is replaced): mean removed and windowed (float32), its
+    zero-padded real DFT, and the Gaussian-blurred copy the refinement correlates."""
+
+    __slots__ = ("windowed", "spectrum", "blurred")
+
+    def __init__(self, image: NDArray[np.floating], window: NDArray[np.float32] | None,
+                 blur: float | None, *, mean: float | None = None) -> None:
+        a = np.array(image, dtype=np.float32, copy=True)
+        a -= np.float32(a.mean() if mean is None else mean)
+        if window is not None:
+            a *= window
+        self.windowed = a
+        h, w = a.shape
+        shape = (cv2.getOptimalDFTSize(h), cv2.getOptimalDFTSize(w))
+        self.spectrum: NDArray[np.complex64] = sp_fft.rfft2(a, s=shape)
+        self.blurred = (None if blur is None else
+                        cv2.GaussianBlur(a, (0, 0), blur) if blur > 0 else a)
+
+
+def _phase_correlate(ref_spectrum: NDArray[np.complexfloating],
+                     img_spectrum: NDArray[np.complexfloating],
+                     shape: tuple[int, int]) -> tuple[float, float, float]:
+    """Phase correlation of two real DFTs (``scipy.fft.rfft2`` of size ``shape``).
+
+    The same estimate as OpenCV's cv2.phaseCorrelate (Kuglin and Hines 1975; OpenCV
+    imgproc phasecorr.cpp is the reference implementation): the cross-power spectrum
+    divided by its magnitude (``P |P| / (|P|^2 + FLT_EPSILON)``), inverse DFT, the
+    highest sample, its 5 x 5 weighted centroid for the sub-pixel position, and as
+    response the sum of the 5 x 5 samples divided by the number of DFT samples. Unlike
+    cv2.phaseCorrelate, lags wrap around the periodic correlation surface instead of
+    going through a quadrant swap, which in OpenCV 5.0 puts the zero lag half a pixel
+    off on an odd-sized axis; on even sizes the two agree.
+
+    Returns
+    -------
+    dx, dy : float
+        Displacement of the image relative to the reference.
+    response : float
+    """
+    p = img_spectrum * np.conj(ref_spectrum)  # peak at +shift (cv2 conjugates the other)
+    mag = np.abs(p)
+    den = mag * mag
+    den += _FLT_EPS
+    np.divide(mag, den, out=mag)
+    p *= mag
+    c = sp_fft.irfft2(p, s=shape)  # includes cv2's division of the response by M * N
+    rows, cols = shape
+    py, px = divmod(int(np.argmax(c)), cols)
+    d = np.arange(-2, 3)
+    box = c[np.ix_((py + d) % rows, (px + d) % cols)].astype(np.float64)
+    total = float(box.sum())
+    den_c = total + 2.220446049250313e-16  # cv2: + DBL_EPSILON
+    oy = float(box.sum(axis=1) @ d) / den_c
+    ox = float(box.sum(axis=0) @ d) / den_c
+    ly = py - rows if py > rows // 2 else py
+    lx = px - cols if px > cols // 2 else px
+    return lx + ox, ly + oy, total
+
+
+def _shift_between(ref: _Prepared, img: _Prepared) -> tuple[float, float, float]:
+    """Phase correlation of two prepared images, sub-pixel refined when both carry
+    blurred copies (see :func:`estimate_shift`)."""
+    h, w = ref.windowed.shape
+    shape = (cv2.getOptimalDFTSize(h), cv2.getOptimalDFTSize(w))
+    dx, dy, resp = _phase_correlate(ref.spectrum, img.spectrum, shape)
+    if (ref.blurred is not None and img.blurred is not None
+            and math.isfinite(dx) and math.isfinite(dy)):
+        dx, dy = _refine_blurred(ref.blurred, img.blurred, dx, dy)
+    return float(dx), float(dy), float(resp)
+
+
 def estimate_shift(reference: NDArray[np.floating], image: NDArray[np.floating], *,
                    window: NDArray[np.floating] | None = None,
                    refine_blur: float | None = 1.0) -> tuple[float, float, float]:
     """Displacement of ``image`` relative to ``reference`` by phase correlation.
 
     Content at ``(x, y)`` in ``reference`` appears at ``(x + dx, y + dy)`` in ``image``.
-    cv2.phaseCorrelate gives the peak (and its response); its 5 x 5 centroid is biased
-    towards whole pixels, so the sub-pixel part is then refined by a parabola through
-    the cross-correlation of the (Gaussian-blurred, ``refine_blur`` px) images at the
-    3 x 3 whole-pixel lags around the peak. Inputs are not modified
-    (cv2.phaseCorrelate multiplies its inputs by the window in place, so copies are
-    passed).
+    Both are mean-removed and multiplied by ``window``; the phase-correlation peak and
+    response are those of cv2.phaseCorrelate (computed here so that a tracker can keep
+    the reference's spectrum, see :func:`_phase_correlate`). Its 5 x 5 centroid is
+    biased towards whole pixels, so the sub-pixel part is then refined by a parabola
+    through the cross-correlation of the (Gaussian-blurred, ``refine_blur`` px) images
+    at the 3 x 3 whole-pixel lags around the peak. Inputs are not modified.
 
     Parameters
     ----------
@@ -1167,20 +1306,9 @@ def estimate_shift(reference: NDArray[np.floating], image: NDArray[np.floating],
     response : float
         Peak response (near 1 for a clean match, a few hundredths for noise).
     """
-    a = np.array(reference, dtype=np.float32, copy=True)
-    b = np.array(image, dtype=np.float32, copy=True)
-    a -= a.mean()
-    b -= b.mean()
-    if window is None:
-        (dx, dy), resp = cv2.phaseCorrelate(a.copy(), b.copy())
-    else:
-        win = np.asarray(window, dtype=np.float32)
-        (dx, dy), resp = cv2.phaseCorrelate(a.copy(), b.copy(), win.copy())
-        a *= win
-        b *= win
-    if refine_blur is not None and math.isfinite(dx) and math.isfinite(dy):
-        dx, dy = _refine_shift(a, b, dx, dy, float(refine_blur))
-    return float(dx), float(dy), float(resp)
+    win = None if window is None else np.asarray(window, dtype=np.float32)
+    blur = None if refine_blur is None else float(refine_blur)
+    return _shift_between(_Prepared(reference, win, blur), _Prepared(image, win, blur))
 
 
 def _prepare_for_drift(small: NDArray[np.float32], highpass_px: float) -> NDArray[np.float32]:
@@ -1244,14 +1372,14 @@ class DriftTracker:
         self.highpass_px = highpass_px
         self.max_jump_px = max(4.0, 0.02 * max(h, w)) if max_jump_px is None else float(max_jump_px)
         self.strong_response = strong_response
-        self._ref: NDArray[np.float32] | None = None
+        self._ref: _Prepared | None = None
         self._ref_shift = (0.0, 0.0)
         self._ref_contrast = 0.0
         self._last = (0.0, 0.0)
         self.n_refreshes = 0
         self.n_measured = 0
 
-    def _nearer_match(self, prep: NDArray[np.float32], dx: float, dy: float
+    def _nearer_match(self, prep: _Prepared, dx: float, dy: float
                       ) -> tuple[float, float] | None:
         """The best whole-pixel lag within ``max_jump_px`` of the last accepted shift,
         sub-pixel refined, when the frames correlate there at least as well as at the
@@ -1266,9 +1394,10 @@ class DriftTracker:
         cx = int(round((self._last[0] - self._ref_shift[0]) / f))
         cy = int(round((self._last[1] - self._ref_shift[1]) / f))
         ix, iy = int(round(dx)), int(round(dy))
-        a = (self._ref - self._ref.mean()) * self._window
-        b = (prep - prep.mean()) * self._window
-        ab, bb = cv2.GaussianBlur(a, (0, 0), 1.0), cv2.GaussianBlur(b, (0, 0), 1.0)
+        assert self._ref is not None and self._ref.blurred is not None
+        a, b = self._ref.windowed, prep.windowed
+        ab, bb = self._ref.blurred, prep.blurred
+        assert bb is not None
         lags = [(cx + i, cy + j) for j in range(-r, r + 1) for i in range(-r, r + 1)
                 if i * i + j * j <= r * r]
         m = 2 + max(abs(v) for lag in lags + [(ix, iy)] for v in lag)
@@ -1284,7 +1413,14 @@ class DriftTracker:
         k = int(np.argmax(score))
         if score[k] < corr((ix, iy)):
             return None
-        return _refine_shift(a, b, float(lags[k][0]), float(lags[k][1]), 1.0)
+        return _refine_blurred(ab, bb, float(lags[k][0]), float(lags[k][1]))
+
+    def _prepared(self, plane: NDArray[np.generic]) -> tuple[_Prepared, float]:
+        """This frame downscaled, filtered and made ready for phase correlation (its
+        spectrum is kept if it becomes the reference), and its contrast."""
+        small = _prepare_for_drift(downscale_for_drift(plane, self.factor), self.highpass_px)
+        mean, sd = cv2.meanStdDev(small)
+        return _Prepared(small, self._window, 1.0, mean=float(mean[0, 0])), float(sd[0, 0])
 
     def update(self, plane: NDArray[np.generic]) -> tuple[float, float, float, bool]:
         """Shift of this frame's content relative to the reference, in full-resolution px.
@@ -1299,8 +1435,7 @@ class DriftTracker:
         """
         if self._window is None:
             return 0.0, 0.0, 0.0, False
-        prep = _prepare_for_drift(downscale_for_drift(plane, self.factor), self.highpass_px)
-        contrast = float(prep.std())
+        prep, contrast = self._prepared(plane)
         if self._ref is None:
             self._ref, self._ref_contrast = prep, contrast
             return 0.0, 0.0, 0.0, False
@@ -1312,7 +1447,7 @@ class DriftTracker:
             self._ref, self._ref_contrast, self._ref_shift = prep, contrast, self._last
             self.n_refreshes += 1
             return self._last[0], self._last[1], 0.0, False
-        dx, dy, resp = estimate_shift(self._ref, prep, window=self._window)
+        dx, dy, resp = _shift_between(self._ref, prep)
         measured = resp >= self.min_response and math.isfinite(dx) and math.isfinite(dy)
         if measured:
             new = (self._ref_shift[0] + dx * self.factor, self._ref_shift[1] + dy * self.factor)
