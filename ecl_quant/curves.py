@@ -638,38 +638,90 @@ def _annulus_for(spot_set: SpotSet, shape: tuple[int, int], *, inner: float, out
     return out, radii
 
 
-def _kth_deviation(s: NDArray[np.float64], a: int, b: int, j: int, med: float, r: int) -> float:
-    """The r-th smallest (0-based) of ``|s[a:b] - med|`` for ascending ``s``.
+def _runs_of_sorted_rows(keys: NDArray[Any], row_starts: NDArray[np.intp]
+                         ) -> tuple[NDArray[np.intp], NDArray[np.intp], NDArray[np.intp],
+                                    NDArray[np.intp]]:
+    """Runs of equal keys in rows that are each sorted ascending, laid end to end.
 
-    The r + 1 values nearest to ``med`` are a window ``s[p:p + r + 1]`` that holds
-    ``s[j - 1]`` or ``s[j]`` (``j``: insertion point of ``med``); the largest deviation in
-    a window is at one of its ends, so the answer is the smallest such end value.
+    Parameters
+    ----------
+    keys : (n,) ndarray
+        The rows one after another; row ``k`` is ``keys[row_starts[k]:row_starts[k+1]]``.
+    row_starts : (R,) ndarray of int
+        Start of each row (non-empty rows).
+
+    Returns
+    -------
+    start, length, row, column : (n_runs,) ndarrays
+        Each run's first position in ``keys``, its length, its row and its place among
+        the runs of that row.
     """
-    p0 = max(a, j - 1 - r)
-    p1 = min(j, b - 1 - r)
-    left = s[p0:p1 + 1]
-    right = s[p0 + r:p1 + 1 + r]
-    return float(np.min(np.maximum(med - left, right - med)))
+    n = keys.size
+    new = np.empty(n, bool)
+    new[0] = True
+    np.not_equal(keys[1:], keys[:-1], out=new[1:])
+    new[row_starts] = True
+    start = np.flatnonzero(new)
+    length = np.diff(start, append=n)
+    row = np.searchsorted(row_starts, start, side="right") - 1
+    first_run = np.searchsorted(start, row_starts)
+    column = np.arange(start.size) - first_run[row]
+    return start, length, row, column
 
 
-def _kept_interval(s: NDArray[np.float64], med: float, thr: float) -> tuple[int, int]:
-    """``[lo, hi)`` of ascending ``s`` where ``|s - med| <= thr`` (computed as numpy does).
+def _clip_compact(values: NDArray[np.float64], counts: NDArray[np.int64], clip_sigma: float
+                  ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64],
+                             NDArray[np.intp]]:
+    """Iterated median/MAD clipping of rows given as distinct values with counts.
 
-    Rounded ``s - med`` is monotone in ``s``, so the kept values are one run of ``s``;
-    its ends are found by bisection, then checked with the exact test.
+    ``values`` (R, U) holds each row's distinct values in ascending order (padding:
+    +inf with count 0). Iterates at most 4 times: median and MAD (x 1.4826) of the kept
+    values; keep every value within ``clip_sigma`` SD of the median; stop when nothing
+    changes or a row would keep fewer than 3 values. Order statistics are read off the
+    cumulative counts, so ties and repeated 8-bit codes are handled exactly, and every
+    row is processed at once.
+
+    Returns
+    -------
+    median, mean, sd, count : (R,) ndarrays
+        Of the final kept values (median: of the last iteration's input set).
     """
-    n = s.size
-    lo = int(np.searchsorted(s, med - thr, "left"))
-    while lo > 0 and abs(s[lo - 1] - med) <= thr:
-        lo -= 1
-    while lo < n and not abs(s[lo] - med) <= thr:
-        lo += 1
-    hi = int(np.searchsorted(s, med + thr, "right"))
-    while hi < n and abs(s[hi] - med) <= thr:
-        hi += 1
-    while hi > lo and not abs(s[hi - 1] - med) <= thr:
-        hi -= 1
-    return lo, max(lo, hi)
+    n_rows = values.shape[0]
+    rows = np.arange(n_rows)
+    present = counts > 0
+    keep = present.copy()
+    med = np.zeros(n_rows)
+
+    def order_stat(cum: NDArray[np.int64], pos: NDArray[np.int64]) -> NDArray[np.intp]:
+        # Column of the value at 0-based position `pos` among the kept, per row.
+        return np.argmax(cum > pos[:, None], axis=1)
+
+    for _ in range(4):
+        w = np.where(keep, counts, 0)
+        cum = np.cumsum(w, axis=1)
+        cnt = cum[:, -1]
+        lo = np.maximum((cnt - 1) // 2, 0)
+        hi = np.maximum(cnt // 2, 0)
+        med = 0.5 * (values[rows, order_stat(cum, lo)] + values[rows, order_stat(cum, hi)])
+        dist = np.abs(values - med[:, None])
+        dev = np.where(keep, dist, np.inf)
+        order = np.argsort(dev, axis=1, kind="stable")
+        dev_sorted = np.take_along_axis(dev, order, axis=1)
+        dcum = np.cumsum(np.take_along_axis(w, order, axis=1), axis=1)
+        d_lo = dev_sorted[rows, order_stat(dcum, lo)]
+        d_hi = dev_sorted[rows, order_stat(dcum, hi)]
+        sd = _MAD_TO_SD * 0.5 * (d_lo + d_hi)
+        new_keep = present & (dist <= clip_sigma * sd[:, None] + 1e-30)
+        new_cnt = np.where(new_keep, counts, 0).sum(axis=1)
+        if np.array_equal(new_keep, keep) or (new_cnt < 3).any():
+            break
+        keep = new_keep
+    w = np.where(keep, counts, 0).astype(np.float64)
+    cnt_f = np.maximum(w.sum(axis=1), 1.0)
+    v = np.where(keep, values, 0.0)
+    mean = (w * v).sum(axis=1) / cnt_f
+    var = (w * np.where(keep, values - mean[:, None], 0.0) ** 2).sum(axis=1) / np.maximum(cnt_f - 1, 1)
+    return med, mean, np.sqrt(var), np.maximum(w.sum(axis=1), 1).astype(np.intp)
 
 
 def _clipped_rows_sorted(values: Sequence[NDArray[np.floating]], clip_sigma: float
@@ -677,39 +729,54 @@ def _clipped_rows_sorted(values: Sequence[NDArray[np.floating]], clip_sigma: flo
                                     NDArray[np.float64], NDArray[np.intp]]:
     """Iterated median/MAD clipping of each row of ``values`` (finite, non-empty, 1-D).
 
-    The same statistics as :meth:`SpotIntegrator._clipped_stats_masked` from one sort
-    per row: the values kept in each iteration are a run ``[a, b)`` of the sorted row,
-    their median is read off it and the MAD's order statistics come from
-    :func:`_kth_deviation`. Mean and SD are summed in sorted order (the same to about
-    1e-16 relative).
+    The same statistics as :meth:`SpotIntegrator._clipped_stats_masked`: each row is
+    sorted, its runs of equal values become (value, count) pairs and
+    :func:`_clip_compact` clips all rows at once. Mean and SD are summed over the
+    distinct values times their counts (the same to about 1e-16 relative).
     """
-    n_rows = len(values)
-    rows = [np.sort(v).astype(np.float64) for v in values]
-    a = np.zeros(n_rows, np.intp)
-    b = np.array([r.size for r in rows], np.intp)
-    med = np.zeros(n_rows)
-    for _ in range(4):
-        new_a = np.empty_like(a)
-        new_b = np.empty_like(b)
-        for k, s in enumerate(rows):
-            ak, bk = int(a[k]), int(b[k])
-            cnt = bk - ak
-            lo, hi = max((cnt - 1) // 2, 0), max(cnt // 2, 0)
-            m = 0.5 * (s[ak + lo] + s[ak + hi])
-            med[k] = m
-            j = int(np.searchsorted(s[ak:bk], m)) + ak
-            d_lo = _kth_deviation(s, ak, bk, j, m, lo)
-            d_hi = d_lo if hi == lo else _kth_deviation(s, ak, bk, j, m, hi)
-            sd = _MAD_TO_SD * 0.5 * (d_lo + d_hi)
-            new_a[k], new_b[k] = _kept_interval(s, m, clip_sigma * sd + 1e-30)
-        if (np.array_equal(new_a, a) and np.array_equal(new_b, b)) or (new_b - new_a < 3).any():
-            break
-        a, b = new_a, new_b
-    cnt = np.maximum(b - a, 1)
-    mean = np.array([s[a[k]:b[k]].sum() for k, s in enumerate(rows)]) / cnt
-    var = np.array([((s[a[k]:b[k]] - mean[k]) ** 2).sum() for k, s in enumerate(rows)]
-                   ) / np.maximum(cnt - 1, 1)
-    return med, mean, np.sqrt(var), cnt
+    sizes = np.array([v.size for v in values], np.intp)
+    keys = np.concatenate([np.sort(v) for v in values]).astype(np.float64)
+    row_starts = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.intp)
+    return _clip_runs(keys, row_starts, clip_sigma)
+
+
+def _clip_runs(keys: NDArray[Any], row_starts: NDArray[np.intp], clip_sigma: float, *,
+               key_value: NDArray[np.float64] | None = None,
+               extra_rows: NDArray[np.intp] | None = None,
+               extra_values: NDArray[np.float64] | None = None
+               ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64],
+                          NDArray[np.intp]]:
+    """:func:`_clip_compact` of rows sorted by ``keys``.
+
+    ``key_value`` maps an integer key to its value (ascending with the key; default:
+    the keys are the values). ``extra_rows``/``extra_values`` add single values to rows
+    (pixels whose value has no key, e.g. replaced hot pixels).
+    """
+    start, length, row, col = _runs_of_sorted_rows(keys, row_starts)
+    n_rows = row_starts.size
+    per_row = np.bincount(row, minlength=n_rows)
+    n_extra = 0 if extra_rows is None else int(extra_rows.size)
+    extra_col = np.zeros(0, np.intp)
+    if n_extra:
+        assert extra_rows is not None and extra_values is not None
+        order = np.argsort(extra_rows, kind="stable")
+        extra_rows, extra_values = extra_rows[order], extra_values[order]
+        first = np.searchsorted(extra_rows, np.arange(n_rows))
+        extra_col = per_row[extra_rows] + np.arange(n_extra) - first[extra_rows]
+        per_row = per_row + np.bincount(extra_rows, minlength=n_rows)
+    width = int(per_row.max())
+    cv = np.full((n_rows, width), np.inf)
+    cc = np.zeros((n_rows, width), np.int64)
+    head = keys[start]
+    cv[row, col] = head if key_value is None else key_value[head]
+    cc[row, col] = length
+    if n_extra:
+        cv[extra_rows, extra_col] = extra_values
+        cc[extra_rows, extra_col] = 1
+        order = np.argsort(cv, axis=1, kind="stable")
+        cv = np.take_along_axis(cv, order, axis=1)
+        cc = np.take_along_axis(cc, order, axis=1)
+    return _clip_compact(cv, cc, clip_sigma)
 
 
 class SpotIntegrator:
@@ -896,7 +963,8 @@ class SpotIntegrator:
                     # the same sequential float64 sums as np.bincount, much faster)
                     # unless a group is empty.
                     "starts": starts if (group_n > 0).all() else None,
-                    "bg_cuts": np.cumsum(g.bg_n)[:-1]}
+                    "bg_cuts": np.cumsum(g.bg_n)[:-1],
+                    "bg_row32": g.bg_spot.astype(np.int32)}
             self._fast = fast
         return fast
 
@@ -947,9 +1015,111 @@ class SpotIntegrator:
         var = np.where(keep, (x - mean[:, None]) ** 2, 0.0).sum(axis=1) / np.maximum(cnt - 1, 1)
         return med, mean, np.sqrt(var), cnt
 
+    def _clipped_from_codes(self, coded: Any, off: int, replaced: NDArray[np.intp] | None,
+                            flat: NDArray[np.floating]
+                            ) -> tuple[NDArray[np.float64], NDArray[np.float64],
+                                       NDArray[np.float64], NDArray[np.intp]] | None:
+        """Background clipping from integer codes instead of float values.
+
+        An annulus holds few distinct codes (a few dozen for 8-bit video), so a
+        histogram of (row, code) over the frame's code range gives each row's distinct
+        values and counts in linear time; with a wide code range (16-bit stills) the
+        codes' ranks are sorted by radix instead. Either way no float sort. None when a
+        row would be empty (the caller then uses the float values).
+        """
+        g = self.geometry
+        fast = self._flat_indices()
+        idx = fast["pix"][g.ap_idx.size:]
+        if off:
+            idx = idx + off
+        codes = coded.codes.reshape(-1)[idx]
+        rows = fast["bg_row32"]
+        n_rows = self.n_spots
+        extra_rows = extra_values = None
+        if replaced is not None and replaced.size:
+            ex = self._replaced_mask(replaced)[idx]
+            if ex.any():
+                extra_rows = g.bg_spot[ex]
+                extra_values = flat[idx[ex]].astype(np.float64)
+                keep = ~ex
+                codes, rows = codes[keep], rows[keep]
+                if (np.bincount(rows, minlength=n_rows) == 0).any():
+                    return None
+        if getattr(coded, "paired", False):
+            # Y' * 256 + C: the two bytes span a few codes each; their product is small.
+            hi = codes >> 8
+            lo = (codes & 0xFF).astype(np.int32)
+            h_min, h_max = int(hi.min()), int(hi.max())
+            l_min, l_max = int(lo.min()), int(lo.max())
+            l_span = l_max - l_min + 1
+            span = (h_max - h_min + 1) * l_span
+            key = None
+            if span * n_rows <= 4 * codes.size:
+                key = hi.astype(np.int32)
+                key -= np.int32(h_min)
+                key *= np.int32(l_span)
+                key += lo
+                key -= np.int32(l_min)
+
+            def code_of(k: NDArray[np.intp]) -> NDArray[np.intp]:
+                return ((k // l_span + h_min) << 8) + (k % l_span + l_min)
+        else:
+            c_min, c_max = int(codes.min()), int(codes.max())
+            span = c_max - c_min + 1
+            key = None
+            if span * n_rows <= 4 * codes.size:
+                key = codes.astype(np.int32)
+                if c_min:
+                    key -= np.int32(c_min)
+
+            def code_of(k: NDArray[np.intp]) -> NDArray[np.intp]:
+                return k + c_min
+        if key is not None:
+            comb = rows * np.int32(span)
+            comb += key
+            hist = np.bincount(comb, minlength=n_rows * span)
+            nz = np.flatnonzero(hist)
+            row = nz // span
+            first = np.searchsorted(row, np.arange(n_rows))
+            col = np.arange(nz.size) - first[row]
+            per_row = np.bincount(row, minlength=n_rows)
+            n_extra = 0 if extra_rows is None else extra_rows.size
+            width = int(per_row.max()) + n_extra
+            cv = np.full((n_rows, width), np.inf)
+            cc = np.zeros((n_rows, width), np.int64)
+            cv[row, col] = coded.table[code_of(nz - row * span)]
+            cc[row, col] = hist[nz]
+            if n_extra:
+                assert extra_rows is not None and extra_values is not None
+                pos = np.arange(n_extra)
+                cv[extra_rows, width - 1 - pos] = extra_values  # distinct columns past the runs
+                cc[extra_rows, width - 1 - pos] = 1
+            # Codes are in code order; the clipping wants each row in value order.
+            order = np.argsort(cv, axis=1, kind="stable")
+            return _clip_compact(np.take_along_axis(cv, order, axis=1),
+                                 np.take_along_axis(cc, order, axis=1), self.clip_sigma)
+        keys = coded.rank[codes]
+        row_n = np.bincount(rows, minlength=n_rows)
+        cuts = np.cumsum(row_n)
+        row_starts = np.concatenate([[0], cuts[:-1]]).astype(np.intp)
+        for a, b in zip(row_starts, cuts):
+            keys[a:b].sort(kind="stable")  # radix sort for 8/16-bit keys
+        return _clip_runs(keys, row_starts, self.clip_sigma, key_value=coded.rank_value,
+                          extra_rows=extra_rows, extra_values=extra_values)
+
+    def _replaced_mask(self, replaced: NDArray[np.intp]) -> NDArray[np.bool_]:
+        cached = self.__dict__.get("_replaced")
+        if cached is not None and cached[0] is replaced:
+            return cached[1]  # type: ignore[no-any-return]
+        mask = np.zeros(self.geometry.shape[0] * self.geometry.shape[1], bool)
+        mask[replaced] = True
+        self._replaced = (replaced, mask)
+        return mask
+
     def add(self, linear_crop: NDArray[np.floating], *, time_s: float,
             shift_px: tuple[float, float] = (0.0, 0.0),
-            saturated_crop: NDArray[np.bool_] | None = None) -> None:
+            saturated_crop: NDArray[np.bool_] | None = None, coded: Any = None,
+            replaced: NDArray[np.intp] | None = None) -> None:
         """Integrate one frame.
 
         Parameters
@@ -963,6 +1133,15 @@ class SpotIntegrator:
             rounded to whole pixels and limited to the margins (:meth:`clip_shift`).
         saturated_crop : (h, w) ndarray of bool, optional
             Saturated pixels of the same crop.
+        coded : CodedCrop, optional
+            The same crop as codes (:func:`ecl_quant.radiometry.code_values`): anything
+            with ``codes`` (h, w), ``rank`` (a rank per code, sorting like the values)
+            and ``rank_value`` (the value of each rank). ``linear_crop`` must equal
+            ``rank_value[rank[codes]]`` except at ``replaced``. Makes the background
+            statistics faster; the results are the same.
+        replaced : (k,) ndarray of int, optional
+            Flat crop indices whose value in ``linear_crop`` was replaced (hot pixels):
+            their codes are not used.
         """
         g = self.geometry
         if linear_crop.shape != g.shape:
@@ -988,7 +1167,15 @@ class SpotIntegrator:
         s1 = group_sums(g.ap_w * ap, n)
         s2 = group_sums(g.ap_w2 * ap, n)
         bg_pix = pix[n_ap:]
-        if starts is not None and np.isfinite(bg_pix).all():
+        clipped = None
+        if coded is not None and starts is not None:
+            if coded.codes.shape != g.shape:
+                raise SpotError(f"coded crop is {coded.codes.shape} but the integrator "
+                                f"expects {g.shape}")
+            clipped = self._clipped_from_codes(coded, off, replaced, flat)
+        if clipped is not None:
+            med, mean, sd, cnt = clipped
+        elif starts is not None and np.isfinite(bg_pix).all():
             # The annulus rows are consecutive runs of the gathered pixels.
             med, mean, sd, cnt = _clipped_rows_sorted(np.split(bg_pix, fast["bg_cuts"]),
                                                       self.clip_sigma)

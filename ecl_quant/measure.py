@@ -444,6 +444,7 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
     """
     from .radiometry import (
         MasterDark,
+        code_values,
         hot_pixel_map,
         linear_values,
         load_dark,
@@ -616,7 +617,11 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
             else:
                 sh = (0.0, 0.0, 0.0, False)
                 shifts.append(sh)
-            lin = linear(frame, region)
+            # Codes and their table when one applies (no dark: a subtracted dark makes
+            # every pixel's value its own); the background statistics then sort codes.
+            coded = (code_values(frame, channel, spec, region=region)
+                     if master is None else None)
+            lin = coded.values() if coded is not None else linear(frame, region)
             if hot_fill is None:
                 hot_fill = _hot_pixel_fill(
                     lin, None if master is None else hot_pixel_map(master)[region])
@@ -628,7 +633,8 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
                 # A hot pixel sits at the top code in every frame whatever the light: it was
                 # replaced above, so it must not mark the spot as saturated either.
                 sat.flat[hot_fill[0]] = False
-            integ.add(lin, time_s=frame.time_s, shift_px=(sh[0], sh[1]), saturated_crop=sat)
+            integ.add(lin, time_s=frame.time_s, shift_px=(sh[0], sh[1]), saturated_crop=sat,
+                      coded=coded, replaced=hot_fill[0])
             clipped_any |= integ.clip_shift(sh[0], sh[1])[2]
             if crop_acc is not None:
                 crop_acc.add(lin, (int(round(sh[0])), int(round(sh[1]))))

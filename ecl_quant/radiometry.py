@@ -715,9 +715,104 @@ def _code_table(kind: str, channel: str, dtype: str, matrix: str, yuv_range: str
     return table
 
 
+@dataclass(frozen=True, eq=False)
+class CodedCrop:
+    """A crop as integer codes plus the table of their linear values.
+
+    ``values()`` equals :func:`linear_values` of the same crop. ``rank`` orders the codes
+    by value (equal values share a rank) and ``rank_value`` is the value of each rank,
+    ascending, so sorting codes by rank sorts their values: 16-bit ranks sort by radix in
+    linear time, where sorting the float values costs n log n.
+
+    Attributes
+    ----------
+    codes : (h, w) ndarray of uint8 or uint16
+        Index into ``table`` of every pixel (video red/blue: Y' * 256 + C).
+    table : (n,) ndarray of float32
+    rank : (n,) ndarray of uint16
+    rank_value : (m,) ndarray of float64
+    paired : bool
+        The codes are Y' * 256 + C (video red/blue), not one sample value.
+    """
+
+    codes: NDArray[np.unsignedinteger[Any]]
+    table: NDArray[np.float32]
+    rank: NDArray[np.uint16]
+    rank_value: NDArray[np.float64]
+    paired: bool = False
+
+    def values(self) -> NDArray[np.float32]:
+        """Linear value of every pixel (a new float32 array)."""
+        return np.take(self.table, self.codes)
+
+
+@functools.lru_cache(maxsize=32)
+def _table_order(key: tuple[Any, ...]) -> tuple[NDArray[np.uint16], NDArray[np.float64]]:
+    """Rank of every entry of ``_code_table(*key)`` and the value of every rank."""
+    table = _code_table(*key)
+    uniq = np.unique(table.astype(np.float64))
+    rank = np.searchsorted(uniq, table.astype(np.float64)).astype(np.uint16)
+    rank.flags.writeable = False
+    uniq.flags.writeable = False
+    return rank, uniq
+
+
+def _upsample_chroma(plane: NDArray[np.uint8], step: tuple[int, int],
+                     b: tuple[int, int, int, int]) -> NDArray[np.uint8]:
+    """Chroma of luma pixels ``b`` by nearest neighbour: pixel (y, x) takes
+    ``plane[min(y // sy, h - 1), min(x // sx, w - 1)]``, as :func:`_video_rgb` does."""
+    import cv2
+
+    r0, r1, c0, c1 = b
+    sy, sx = step
+    ph, pw = plane.shape
+    q0, q1 = r0 // sy, min(-(-r1 // sy), ph)
+    p0, p1 = c0 // sx, min(-(-c1 // sx), pw)
+    sub = plane[q0:q1, p0:p1]
+    need_h, need_w = r1 - r0, c1 - c0
+    if (sy, sx) == (1, 1):
+        up = sub
+    else:
+        up = cv2.resize(np.ascontiguousarray(sub), (sub.shape[1] * sx, sub.shape[0] * sy),
+                        interpolation=cv2.INTER_NEAREST)
+    oy, ox = r0 - q0 * sy, c0 - p0 * sx
+    up = up[oy:oy + need_h, ox:ox + need_w]
+    if up.shape != (need_h, need_w):  # past the last chroma row/column: repeat it
+        up = np.pad(up, ((0, need_h - up.shape[0]), (0, need_w - up.shape[1])), mode="edge")
+    return up
+
+
+def code_values(frame: Frame, channel: str, transfer: TransferSpec | str = "auto", *,
+                region: tuple[slice, slice] | None = None) -> CodedCrop | None:
+    """The crop as codes into a table of linear values, or None where no table applies.
+
+    Tables exist for 8-bit video (``luma``, ``red``, ``blue``; red and blue from the
+    (Y', Cr) or (Y', Cb) code pair) and 8/16-bit stills with the sRGB, BT.709, gamma
+    and linear transfers; ``values()`` gives exactly :func:`linear_values`.
+    """
+    spec = resolve_transfer(transfer, frame)
+    found = _table_codes(frame, channel, spec, region)
+    if found is None:
+        return None
+    key, codes = found
+    rank, rank_value = _table_order(key)
+    return CodedCrop(codes, _code_table(*key), rank, rank_value, paired=bool(key[5]))
+
+
 def _table_values(frame: Frame, channel: str, spec: TransferSpec,
                   region: tuple[slice, slice] | None) -> NDArray[np.float32] | None:
     """:func:`linear_values` by table lookup, or None where no table applies."""
+    found = _table_codes(frame, channel, spec, region)
+    if found is None:
+        return None
+    key, codes = found
+    return np.take(_code_table(*key), codes)
+
+
+def _table_codes(frame: Frame, channel: str, spec: TransferSpec,
+                 region: tuple[slice, slice] | None
+                 ) -> tuple[tuple[Any, ...], NDArray[Any]] | None:
+    """The ``_code_table`` key and the code of every pixel of the crop, or None."""
     if spec.kind not in _TABLE_TRANSFERS or channel not in CHANNELS:
         return None
     r0, r1, c0, c1 = _bounds(region, frame.shape)
@@ -731,30 +826,24 @@ def _table_values(frame: Frame, channel: str, spec: TransferSpec,
         crop = data[r0:r1, c0:c1] if data.ndim == 2 else data[r0:r1, c0:c1, _RGB_INDEX[channel]]
         if float(frame.max_code) != float(np.iinfo(data.dtype).max):
             return None
-        table = _code_table("still", "red", data.dtype.str, "", "", False, spec.kind, spec.gamma)
-        return np.take(table, crop)
+        return ("still", "red", data.dtype.str, "", "", False, spec.kind, spec.gamma), crop
     if frame.kind != "video" or data.dtype != np.uint8 or frame.bit_depth != 8:
         return None
     y = data[r0:r1, c0:c1]
     if channel == "luma" or (frame.chroma is None and channel in _RGB_INDEX):
-        table = _code_table("video", "luma", "|u1", frame.yuv_matrix, frame.yuv_range, False,
-                            spec.kind, spec.gamma)
-        return np.take(table, y)
+        return ("video", "luma", "|u1", frame.yuv_matrix, frame.yuv_range, False,
+                spec.kind, spec.gamma), y
     if channel not in ("red", "blue") or frame.chroma is None:
         return None
     plane = frame.chroma[1] if channel == "red" else frame.chroma[0]
     if plane.dtype != np.uint8:
         return None
-    table = _code_table("video", channel, "|u1", frame.yuv_matrix, frame.yuv_range, True,
-                        spec.kind, spec.gamma)
     # Chroma by nearest neighbour, as in _video_rgb: pixel (y, x) uses (y // sy, x // sx).
-    sy, sx = frame.chroma_step
-    rows = np.minimum(np.arange(r0, r1) // sy, plane.shape[0] - 1)
-    cols = np.minimum(np.arange(c0, c1) // sx, plane.shape[1] - 1)
     idx = y.astype(np.uint16)
     idx <<= 8
-    idx |= plane[rows][:, cols]
-    return np.take(table, idx)
+    idx |= _upsample_chroma(plane, tuple(frame.chroma_step), (r0, r1, c0, c1))
+    return ("video", channel, "|u1", frame.yuv_matrix, frame.yuv_range, True,
+            spec.kind, spec.gamma), idx
 
 
 def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] | None = None,

@@ -314,3 +314,119 @@ def test_integrator_rejects_bad_geometry():
     with pytest.raises(SpotError, match="background annulus of spot 1"):
         SpotIntegrator(tight, (20, 20), annulus_inner=1.05, annulus_outer=1.06,
                        annulus_min_px=200)
+
+
+# ------------------------------------------------------------------ background clipping
+
+
+def _numpy_sigma_clip(x, k=3.0):
+    """Plain numpy reference of the background rule (iterated median +- k x 1.4826 MAD,
+    at most 4 passes, keeping every value within the band; common practice)."""
+    x = np.asarray(x, np.float64)
+    keep = np.ones(x.size, bool)
+    med = 0.0
+    for _ in range(4):
+        med = np.median(x[keep])
+        sd = 1.482602218505602 * np.median(np.abs(x[keep] - med))
+        new = np.abs(x - med) <= k * sd + 1e-30
+        if np.array_equal(new, keep) or new.sum() < 3:
+            break
+        keep = new
+    return med, x[keep].mean(), x[keep].std(ddof=1), int(keep.sum())
+
+
+def test_clipped_rows_match_a_plain_numpy_sigma_clip():
+    # Rows of 8-bit-like values (many ties) and heavy-tailed floats, against numpy's
+    # median/mean/std applied literally.
+    from ecl_quant.curves import _clipped_rows_sorted
+
+    rng = np.random.default_rng(41)
+    for trial in range(60):
+        rows = []
+        for _ in range(int(rng.integers(1, 6))):
+            n = int(rng.integers(3, 300))
+            if trial % 2:
+                rows.append((np.round(rng.normal(50, 3, n)) / 255).astype(np.float32))
+            else:
+                rows.append(rng.standard_cauchy(n).astype(np.float32))
+        med, mean, sd, cnt = _clipped_rows_sorted(rows, 3.0)
+        for k, v in enumerate(rows):
+            m2, mu2, s2, c2 = _numpy_sigma_clip(v)
+            assert med[k] == pytest.approx(m2, rel=1e-12, abs=1e-15)
+            assert mean[k] == pytest.approx(mu2, rel=1e-9, abs=1e-15)
+            assert sd[k] == pytest.approx(s2, rel=1e-9, abs=1e-15)
+            assert cnt[k] == c2
+
+
+def _coded_frame(rng, shape, *, bits=8, pair=False):
+    """Codes of a glowing-spot scene, their table (sRGB EOTF, IEC 61966-2-1) and ranks."""
+    def srgb_to_linear(v):  # IEC 61966-2-1 EOTF
+        return np.where(v <= 0.04045, v / 12.92, ((v + 0.055) / 1.055) ** 2.4)
+
+    h, w = shape
+    yy, xx = np.mgrid[0:h, 0:w]
+    glow = np.exp(-((xx - 30.0) ** 2 + (yy - 26.0) ** 2) / 60.0)
+    top = 255 if bits == 8 else 65535
+    base = 0.25 * top + 0.5 * top * glow
+    if pair:
+        y = np.clip(np.round(0.25 * top + 8 * glow + rng.normal(0, 1, shape)), 0,
+                    255).astype(np.uint16)
+        c = np.clip(np.round(128 + 3 * glow + rng.normal(0, 1, shape)), 0, 255).astype(np.uint16)
+        codes = (y << 8) | c
+        grid = np.arange(65536)
+        # A (Y', C) pair -> a value not monotone in the code (as video red is).
+        table = srgb_to_linear(np.clip(((grid >> 8) + 1.4 * ((grid & 255) - 128)) / 255, 0, 1))
+    else:
+        dtype = np.uint8 if bits == 8 else np.uint16
+        codes = np.clip(np.round(base + rng.normal(0, 3 if bits == 8 else 700, shape)), 0,
+                        top).astype(dtype)
+        table = srgb_to_linear(np.arange(top + 1) / top)
+    table = np.asarray(table, np.float32)
+    uniq = np.unique(table.astype(np.float64))
+    rank = np.searchsorted(uniq, table.astype(np.float64)).astype(np.uint16)
+
+    class Coded:
+        pass
+
+    coded = Coded()
+    coded.codes, coded.table, coded.rank, coded.rank_value = codes, table, rank, uniq
+    coded.paired = pair
+    return coded
+
+
+@pytest.mark.parametrize("bits,pair", [(8, False), (8, True), (16, False)])
+def test_integrator_from_codes_equals_the_float_path(bits, pair):
+    # The code histogram / radix path must give the same background statistics as the
+    # float values (numpy sort) and the plain numpy sigma clip, with a drift shift and a
+    # few replaced (hot) pixels inside the annuli.
+    rng = np.random.default_rng(42 + bits + pair)
+    shape = (56, 90)
+    ss = SpotSet((make_spot(1, "circle", (30.0, 26.0, 6.0)), make_spot(2, "circle", (62.0, 28.0, 5.0))))
+    a = SpotIntegrator(ss, shape, pad_px=3)
+    b = SpotIntegrator(ss, shape, pad_px=3)
+    region = a.region
+    # Replaced pixels: some in each annulus (unshifted positions) and one in an aperture.
+    g = a.geometry
+    hot = np.sort(np.concatenate([g.bg_flat[[3, 40, 90]], g.bg_flat[g.bg_spot == 1][[5, 60]],
+                                  g.ap_idx[[10]]])).astype(np.intp)
+    for i, shift in enumerate([(0, 0), (2, -1), (-3, 2)]):
+        coded = _coded_frame(rng, shape, bits=bits, pair=pair)
+        coded.codes = np.ascontiguousarray(coded.codes[region])
+        lin = np.take(coded.table, coded.codes)
+        # Replaced values near their neighbours' (kept by the clipping), off the table.
+        lin.reshape(-1)[hot] = lin.reshape(-1)[hot - 1] * np.float32(1.0007)
+        a.add(lin, time_s=float(i), shift_px=shift, coded=coded, replaced=hot)
+        b.add(lin.copy(), time_s=float(i), shift_px=shift)
+        # numpy reference on the same annulus pixels (shifted like the masks).
+        g = a.geometry
+        off = shift[1] * g.shape[1] + shift[0]
+        flat = lin.reshape(-1)
+        for k in range(2):
+            vals = flat[g.bg_flat[g.bg_spot == k] + off]
+            ref = _numpy_sigma_clip(vals)
+            assert a.raw_arrays()["bg"][-1, k] == pytest.approx(ref[1], rel=1e-9)
+            assert a.raw_arrays()["bg_sd"][-1, k] == pytest.approx(ref[2], rel=1e-9)
+            assert a.raw_arrays()["bg_n"][-1, k] == ref[3]
+    ra, rb = a.raw_arrays(), b.raw_arrays()
+    for key in ("sum", "sum_w2", "bg", "bg_sd", "bg_n"):
+        np.testing.assert_allclose(ra[key], rb[key], rtol=1e-12, atol=0)

@@ -640,3 +640,48 @@ def test_ten_bit_limited_range_scaling():
     np.testing.assert_allclose(red[:2], [0.0, 438 / 876], atol=1e-7)
     np.testing.assert_allclose(red[2:], [1.0 + (2 - 2 * 0.2627) * 0.5,
                                          955 / 876 + (2 - 2 * 0.2627) * 0.5], atol=1e-6)
+
+
+@pytest.mark.parametrize("step,shape", [((2, 2), (37, 51)), ((1, 2), (20, 33)), ((1, 1), (9, 14))])
+@pytest.mark.parametrize("channel", ["luma", "red", "blue"])
+def test_coded_crop_values_equal_the_formulas(step, shape, channel):
+    # code_values (one table lookup per pixel) must give exactly linearize(channel_values)
+    # (the BT formulas of CAMERA_NOTES 1.4 and the BT.709 EOTF), for odd frame sizes and
+    # crops starting on odd rows/columns where the chroma is shared unevenly.
+    from ecl_quant.radiometry import code_values
+
+    rng = np.random.default_rng(51)
+    h, w = shape
+    y = rng.integers(0, 256, (h, w), np.uint8)
+    ch, cw = -(-h // step[0]), -(-w // step[1])
+    cb = rng.integers(0, 256, (ch, cw), np.uint8)
+    cr = rng.integers(0, 256, (ch, cw), np.uint8)
+    fr = Frame(index=0, time_s=0.0, data=y, max_code=255, source="m", kind="video",
+               chroma=(cb, cr), chroma_step=step, yuv_matrix="bt709", yuv_range="limited")
+    for region in [None, (slice(1, h - 2), slice(3, w)), (slice(h - 5, h), slice(w - 4, w))]:
+        coded = code_values(fr, channel, "bt709", region=region)
+        expected = linearize(channel_values(fr, channel, region=region), TransferSpec("bt709"),
+                             channel=channel)
+        np.testing.assert_array_equal(coded.values(), expected)
+        # Ranks order the values (equal values share a rank).
+        v = coded.table.astype(np.float64)
+        np.testing.assert_array_equal(coded.rank_value[coded.rank], v)
+        assert np.all(np.diff(coded.rank_value) > 0)
+
+
+def test_coded_crop_of_stills_and_none_where_no_table():
+    from ecl_quant.radiometry import code_values
+
+    rng = np.random.default_rng(52)
+    for dtype in (np.uint8, np.uint16):
+        rgb = rng.integers(0, np.iinfo(dtype).max, (12, 10, 3), dtype)
+        fr = Frame(index=0, time_s=0.0, data=rgb, max_code=float(np.iinfo(dtype).max),
+                   source="s", kind="still", bit_depth=8 * np.dtype(dtype).itemsize)
+        for channel in ("red", "green", "blue"):
+            coded = code_values(fr, channel, "srgb", region=(slice(2, 9), slice(1, 7)))
+            expected = linearize(channel_values(fr, channel, region=(slice(2, 9), slice(1, 7))),
+                                 TransferSpec("srgb"), channel=channel)
+            np.testing.assert_array_equal(coded.values(), expected)
+    fr = Frame(index=0, time_s=0.0, data=rgb.astype(np.float32), max_code=1.0, source="s",
+               kind="still", bit_depth=32)
+    assert code_values(fr, "red", "srgb") is None
