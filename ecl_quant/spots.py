@@ -1165,6 +1165,30 @@ def downscale_for_drift(plane: NDArray[np.generic], factor: int) -> NDArray[np.f
     return np.ascontiguousarray(small, dtype=np.float32)
 
 
+def _lag_products(a: NDArray[np.float32], b: NDArray[np.float32], margin: int,
+                  lags: Sequence[tuple[int, int]]) -> list[float]:
+    """Cross-correlation ``sum(core * b[core shifted by (lx, ly)])`` for each lag, where
+    ``core`` is ``a`` without ``margin`` pixels on each side (``|lx|, |ly| < margin``).
+
+    The core is placed in a zero image of the full row width, so that every lag is one
+    dot product of two contiguous runs of memory (a row's wrap into the next row meets
+    only zeros): no copy of ``b`` per lag.
+    """
+    h, w = a.shape
+    m = margin
+    rows = h - 2 * m
+    padded = np.zeros((rows, w), dtype=np.float32)
+    padded[:, m:w - m] = a[m:h - m, m:w - m]
+    flat_core = padded.ravel()
+    flat_b = np.ascontiguousarray(b, dtype=np.float32).ravel()
+    n = rows * w
+    out = []
+    for lx, ly in lags:
+        start = (m + ly) * w + lx
+        out.append(float(np.dot(flat_core, flat_b[start:start + n])))
+    return out
+
+
 def _refine_blurred(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, dy: float
                     ) -> tuple[float, float]:
     """Sub-pixel peak of the cross-correlation of the (already blurred) images ``a`` and
@@ -1174,12 +1198,11 @@ def _refine_blurred(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, d
     m = 2 + max(abs(ix), abs(iy))
     if h - 2 * m < 4 or w - 2 * m < 4:
         return dx, dy
-    core = a[m:h - m, m:w - m].ravel()
     c = np.empty((3, 3))
-    for j, ddy in enumerate((-1, 0, 1)):
-        for i, ddx in enumerate((-1, 0, 1)):
-            sy, sx = iy + ddy, ix + ddx
-            c[j, i] = float(np.dot(core, b[m + sy:h - m + sy, m + sx:w - m + sx].ravel()))
+    where = ((1, 0), (1, 1), (1, 2), (0, 1), (2, 1))  # the corners are not used
+    values = _lag_products(a, b, m, [(ix + i - 1, iy + j - 1) for j, i in where])
+    for (j, i), v in zip(where, values):
+        c[j, i] = v
 
     def vertex(left: float, mid: float, right: float) -> float | None:
         den = left - 2.0 * mid + right
@@ -1210,12 +1233,13 @@ class _Prepared:
     with the reference until it is replaced): mean removed and windowed (float32), its
     zero-padded real DFT, and the Gaussian-blurred copy the refinement correlates."""
 
-    __slots__ = ("windowed", "spectrum", "blurred")
+    __slots__ = ("windowed", "spectrum", "blurred", "_conj")
 
     def __init__(self, image: NDArray[np.floating], window: NDArray[np.float32] | None,
                  blur: float | None, *, mean: float | None = None) -> None:
-        a = np.array(image, dtype=np.float32, copy=True)
-        a -= np.float32(a.mean() if mean is None else mean)
+        img = np.asarray(image)
+        a = np.subtract(img, np.float32(img.mean(dtype=np.float32) if mean is None else mean),
+                        dtype=np.float32)
         if window is not None:
             a *= window
         self.windowed = a
@@ -1224,12 +1248,20 @@ class _Prepared:
         self.spectrum: NDArray[np.complex64] = sp_fft.rfft2(a, s=shape)
         self.blurred = (None if blur is None else
                         cv2.GaussianBlur(a, (0, 0), blur) if blur > 0 else a)
+        self._conj: NDArray[np.complex64] | None = None
+
+    def conj_spectrum(self) -> NDArray[np.complex64]:
+        """Complex conjugate of the spectrum (kept: a reference is used many times)."""
+        if self._conj is None:
+            self._conj = np.conj(self.spectrum)
+        return self._conj
 
 
-def _phase_correlate(ref_spectrum: NDArray[np.complexfloating],
+def _phase_correlate(ref_conj: NDArray[np.complexfloating],
                      img_spectrum: NDArray[np.complexfloating],
                      shape: tuple[int, int]) -> tuple[float, float, float]:
-    """Phase correlation of two real DFTs (``scipy.fft.rfft2`` of size ``shape``).
+    """Phase correlation of two real DFTs (``scipy.fft.rfft2`` of size ``shape``; the
+    reference's is passed complex-conjugated).
 
     The same estimate as OpenCV's cv2.phaseCorrelate (Kuglin and Hines 1975; OpenCV
     imgproc phasecorr.cpp is the reference implementation): the cross-power spectrum
@@ -1246,7 +1278,7 @@ def _phase_correlate(ref_spectrum: NDArray[np.complexfloating],
         Displacement of the image relative to the reference.
     response : float
     """
-    p = img_spectrum * np.conj(ref_spectrum)  # peak at +shift (cv2 conjugates the other)
+    p = img_spectrum * ref_conj  # peak at +shift (cv2 conjugates the other spectrum)
     mag = np.abs(p)
     den = mag * mag
     den += _FLT_EPS
@@ -1271,7 +1303,7 @@ def _shift_between(ref: _Prepared, img: _Prepared) -> tuple[float, float, float]
     blurred copies (see :func:`estimate_shift`)."""
     h, w = ref.windowed.shape
     shape = (cv2.getOptimalDFTSize(h), cv2.getOptimalDFTSize(w))
-    dx, dy, resp = _phase_correlate(ref.spectrum, img.spectrum, shape)
+    dx, dy, resp = _phase_correlate(ref.conj_spectrum(), img.spectrum, shape)
     if (ref.blurred is not None and img.blurred is not None
             and math.isfinite(dx) and math.isfinite(dy)):
         dx, dy = _refine_blurred(ref.blurred, img.blurred, dx, dy)
@@ -1321,7 +1353,7 @@ def _prepare_for_drift(small: NDArray[np.float32], highpass_px: float) -> NDArra
     k = 2 * int(round(highpass_px)) + 1
     low = cv2.blur(cv2.blur(med, (k, k), borderType=cv2.BORDER_REFLECT),
                    (k, k), borderType=cv2.BORDER_REFLECT)
-    return (med - low).astype(np.float32)
+    return (med - low).astype(np.float32, copy=False)
 
 
 class DriftTracker:
@@ -1394,24 +1426,18 @@ class DriftTracker:
         cx = int(round((self._last[0] - self._ref_shift[0]) / f))
         cy = int(round((self._last[1] - self._ref_shift[1]) / f))
         ix, iy = int(round(dx)), int(round(dy))
-        assert self._ref is not None and self._ref.blurred is not None
-        a, b = self._ref.windowed, prep.windowed
+        if self._ref is None or self._ref.blurred is None or prep.blurred is None:
+            return None
         ab, bb = self._ref.blurred, prep.blurred
-        assert bb is not None
         lags = [(cx + i, cy + j) for j in range(-r, r + 1) for i in range(-r, r + 1)
                 if i * i + j * j <= r * r]
         m = 2 + max(abs(v) for lag in lags + [(ix, iy)] for v in lag)
-        h, w = a.shape
+        h, w = ab.shape
         if h - 2 * m < 4 or w - 2 * m < 4:
             return None
-        core = ab[m:h - m, m:w - m]
-
-        def corr(lag: tuple[int, int]) -> float:
-            return float(np.vdot(core, bb[m + lag[1]:h - m + lag[1], m + lag[0]:w - m + lag[0]]))
-
-        score = [corr(lag) for lag in lags]
+        *score, at_peak = _lag_products(ab, bb, m, lags + [(ix, iy)])
         k = int(np.argmax(score))
-        if score[k] < corr((ix, iy)):
+        if score[k] < at_peak:
             return None
         return _refine_blurred(ab, bb, float(lags[k][0]), float(lags[k][1]))
 

@@ -3,7 +3,8 @@
 Outside references named beside each check: elementary geometry (areas of circles,
 rectangles, triangles), scikit-image (draw.disk, feature.blob_log,
 registration.phase_cross_correlation), OpenCV (cv2.phaseCorrelate sign convention, see
-CAMERA_NOTES section 3), scipy.ndimage.shift (sub-pixel test images), jsonschema.
+CAMERA_NOTES section 3, and its peak and response), numpy (block means),
+scipy.ndimage.shift (sub-pixel test images), jsonschema.
 """
 
 from __future__ import annotations
@@ -26,6 +27,8 @@ from ecl_quant.spots import (
     annulus_cutout,
     background_surface,
     detect_spots,
+    downscale_for_drift,
+    drift_plane,
     estimate_shift,
     isolated_pixels,
     load_spots,
@@ -377,6 +380,137 @@ def test_drift_tracker_follows_a_simulated_tremor():
                           n_frames=40, onset_s=0.3, seed=9)
     drift = _plan(spec).drift
     tracker = DriftTracker(spec.size)
+    est, ok = [], []
+    for frame in render_linear_frames(spec):
+        code = np.clip(np.rint(255 * np.sqrt(frame[..., 0])), 0, 255).astype(np.uint8)
+        dx, dy, _, measured = tracker.update(code)
+        est.append((dx, dy))
+        ok.append(measured)
+    est, ok = np.array(est), np.array(ok)
+    assert ok.sum() >= 25
+    off = est[ok] - drift[ok]
+    err = off - np.median(off, axis=0)
+    assert np.sqrt(np.mean(err**2)) < 0.3
+    assert np.abs(err).max() < 1.0
+
+
+def _texture(shape, blur, seed):
+    rng = np.random.default_rng(seed)
+    return cv2.GaussianBlur(rng.random(shape).astype(np.float32), (0, 0), blur)
+
+
+@pytest.mark.parametrize("shape", [(96, 128), (120, 160)])
+@pytest.mark.parametrize("shift", [(0.0, 0.0), (5.0, 3.0), (-7.0, 2.0), (0.3, -0.6), (-2.4, 1.9)])
+def test_phase_correlation_agrees_with_opencv(shape, shift):
+    # Reference library: OpenCV's cv2.phaseCorrelate on the same mean-removed inputs and
+    # window (even sizes, where its quadrant swap puts the zero lag exactly at the
+    # centre). Unrefined estimate_shift is the same estimator: same peak within 0.01 px,
+    # same response within 1e-3 (the drift tracker always uses a window).
+    from scipy import ndimage
+
+    h, w = shape
+    a = _texture(shape, 2.0, 11)
+    b = ndimage.shift(a, (shift[1], shift[0]), order=3, mode="wrap").astype(np.float32)
+    b += np.random.default_rng(12).normal(0.0, 0.002, shape).astype(np.float32)
+    win = cv2.createHanningWindow((w, h), cv2.CV_32F)
+    dx, dy, resp = estimate_shift(a, b, window=win, refine_blur=None)
+    (cx, cy), cresp = cv2.phaseCorrelate(a - a.mean(), b - b.mean(), win.copy())
+    assert (dx, dy) == pytest.approx((cx, cy), abs=0.01)
+    assert resp == pytest.approx(cresp, abs=1e-3)
+    assert (dx, dy) == pytest.approx(shift, abs=0.6)  # the whole-pixel peak is right
+
+
+@pytest.mark.parametrize("shift", [(0, 0), (0, 1), (2, -1), (-5, 3), (-1, -4)])
+def test_estimate_shift_has_no_offset_on_odd_sizes(shift):
+    # 135 x 240 is the downscaled size of a 1080p frame. Truth: two crops of one larger
+    # image (discs on a fine texture) offset by whole pixels; cross-checked with
+    # skimage's phase_cross_correlation (opposite sign convention, CAMERA_NOTES section 3).
+    # cv2.phaseCorrelate in OpenCV 5.0 adds half a pixel on the odd axis.
+    from skimage.registration import phase_cross_correlation
+
+    pad = 8
+    big = _disc_image((135 + 2 * pad, 240 + 2 * pad), _grid(3, 5, 45.0, (38.0, 30.0)), 9.0,
+                      np.linspace(0.3, 1.0, 15), edge=1.0, noise=0.01, seed=21)
+    big += 0.2 * _texture(big.shape, 1.0, 22)
+    dx, dy = shift
+    a = big[pad:pad + 135, pad:pad + 240]
+    b = big[pad - dy:pad - dy + 135, pad - dx:pad - dx + 240]  # content moved by (dx, dy)
+    win = cv2.createHanningWindow((240, 135), cv2.CV_32F)
+    # Phase-correlation centroid: within 0.03 px of whole-pixel truth. The parabola
+    # refinement (made for sub-pixel shifts) keeps within 0.1 px of it here.
+    ref = phase_cross_correlation(a, b, upsample_factor=20)[0]
+    for refine, tol in ((None, 0.03), (1.0, 0.1)):
+        ex, ey, resp = estimate_shift(a, b, window=win, refine_blur=refine)
+        assert (ex, ey) == pytest.approx((dx, dy), abs=tol)
+        assert (ex, ey) == pytest.approx((-ref[1], -ref[0]), abs=tol)
+        assert resp > 0.3
+
+
+def _block_means(img, f):
+    # Reference: numpy reshape + mean in float64 over f x f blocks from the top-left.
+    h, w = img.shape[0] // f * f, img.shape[1] // f * f
+    return img[:h, :w].astype(np.float64).reshape(h // f, f, w // f, f).mean(axis=(1, 3))
+
+
+@pytest.mark.parametrize("factor", [1, 2, 3, 4, 6, 8, 12])
+def test_downscale_for_drift_is_a_block_mean(factor):
+    rng = np.random.default_rng(factor)
+    img = rng.random((101, 146)).astype(np.float32)
+    img0 = img.copy()
+    small = downscale_for_drift(img, factor)
+    np.testing.assert_array_equal(img, img0)
+    assert small.dtype == np.float32 and small.flags.c_contiguous
+    np.testing.assert_allclose(small, _block_means(img, factor), rtol=0, atol=2e-6)
+
+
+@pytest.mark.parametrize("dtype, factor, n_rounded", [
+    (np.uint8, 8, 1), (np.uint16, 8, 1), (np.uint8, 4, 0), (np.uint8, 16, 2)])
+def test_downscale_for_drift_integer_planes(dtype, factor, n_rounded):
+    # Steps before the last two 2 x 2 steps round to whole codes (cv2.resize INTER_AREA,
+    # half up: 1/8 code too high on average): one such step errs by at most 1/2 code, two
+    # by at most 1 code; the rest is exact.
+    rng = np.random.default_rng(3)
+    top = 255 if dtype == np.uint8 else 4095
+    img = rng.integers(0, top + 1, (128, 176)).astype(dtype)
+    err = downscale_for_drift(img, factor) - _block_means(img, factor)
+    assert np.abs(err).max() <= 0.5 * n_rounded + 1e-4
+    assert abs(err.mean() - 0.125 * n_rounded) < 0.05
+
+
+def test_downscale_for_drift_channel_views_and_strided_planes():
+    # A channel view of interleaved RGB data (as drift_plane returns for stills) and a
+    # decoder plane with line padding give the same result as a contiguous copy.
+    rng = np.random.default_rng(4)
+    rgb = rng.integers(0, 256, (96, 160, 3)).astype(np.uint8)
+    rgb0 = rgb.copy()
+    for c in range(3):
+        plane = drift_plane(type("F", (), {"data": rgb})(), ("red", "green", "blue")[c])
+        assert plane.base is rgb
+        np.testing.assert_array_equal(downscale_for_drift(plane, 8),
+                                      downscale_for_drift(np.ascontiguousarray(rgb[..., c]), 8))
+    np.testing.assert_array_equal(rgb, rgb0)
+    rot = np.rot90(rgb)[..., 1]  # not a plain channel view: falls back to a copy
+    np.testing.assert_array_equal(downscale_for_drift(rot, 4),
+                                  downscale_for_drift(np.ascontiguousarray(rot), 4))
+    buf = rng.integers(0, 256, (96, 192)).astype(np.uint8)
+    np.testing.assert_array_equal(downscale_for_drift(buf[:, :160], 8),
+                                  downscale_for_drift(buf[:, :160].copy(), 8))
+    np.testing.assert_allclose(downscale_for_drift(rgb[..., 2], 8), _block_means(rgb[..., 2], 8),
+                               atol=0.5 + 1e-4)
+
+
+def test_drift_tracker_odd_downscaled_size():
+    # A 270 x 480 recording downscales by 2 to 135 x 240 (the size used for 1080p video):
+    # simulated tremor with known truth (the project's simulator), compared after
+    # removing the median offset as in the test above.
+    from ecl_quant.simulate import SimulationSpec, _plan, render_linear_frames
+
+    spec = SimulationSpec(size=(270, 480), n_rows=2, n_cols=4, radius_px=12.0, spacing_px=70.0,
+                          amplitudes=(0.05, 0.1, 0.15, 0.2, 0.25, 0.3, 0.35, 0.4), drift_px=6.0,
+                          n_frames=40, onset_s=0.3, seed=5, shot_noise="gaussian")
+    drift = _plan(spec).drift
+    tracker = DriftTracker(spec.size)
+    assert tracker.small_shape == (135, 240)
     est, ok = [], []
     for frame in render_linear_frames(spec):
         code = np.clip(np.rint(255 * np.sqrt(frame[..., 0])), 0, 255).astype(np.uint8)
