@@ -1015,36 +1015,30 @@ class SpotIntegrator:
         var = np.where(keep, (x - mean[:, None]) ** 2, 0.0).sum(axis=1) / np.maximum(cnt - 1, 1)
         return med, mean, np.sqrt(var), cnt
 
-    def _clipped_from_codes(self, coded: Any, off: int, replaced: NDArray[np.intp] | None,
-                            flat: NDArray[np.floating]
+    def _clipped_from_codes(self, coded: Any, codes: NDArray[Any], gone: NDArray[np.intp],
+                            gone_values: NDArray[np.floating]
                             ) -> tuple[NDArray[np.float64], NDArray[np.float64],
                                        NDArray[np.float64], NDArray[np.intp]] | None:
         """Background clipping from integer codes instead of float values.
 
-        An annulus holds few distinct codes (a few dozen for 8-bit video), so a
-        histogram of (row, code) over the frame's code range gives each row's distinct
-        values and counts in linear time; with a wide code range (16-bit stills) the
-        codes' ranks are sorted by radix instead. Either way no float sort. None when a
-        row would be empty (the caller then uses the float values).
+        ``codes`` are the background entries' codes (``geometry.bg_flat`` order, shifted);
+        ``gone`` the entries whose value is not their code's (replaced hot pixels), with
+        their values. An annulus holds few distinct codes (a few dozen for 8-bit video),
+        so a histogram of (row, code) over the frame's code range gives each row's
+        distinct values and counts in linear time; with a wide code range (16-bit
+        stills) the codes' ranks are sorted by radix instead. Either way no float sort.
+        None when a row would be empty (the caller then uses the float values).
         """
         g = self.geometry
         fast = self._flat_indices()
-        idx = fast["pix"][g.ap_idx.size:]
-        if off:
-            idx = idx + off
-        codes = coded.codes.reshape(-1)[idx]
         rows = fast["bg_row32"]
         n_rows = self.n_spots
         extra_rows = extra_values = None
-        if replaced is not None and replaced.size:
-            ex = self._replaced_mask(replaced)[idx]
-            if ex.any():
-                extra_rows = g.bg_spot[ex]
-                extra_values = flat[idx[ex]].astype(np.float64)
-                keep = ~ex
-                codes, rows = codes[keep], rows[keep]
-                if (np.bincount(rows, minlength=n_rows) == 0).any():
-                    return None
+        if gone.size:
+            extra_rows = g.bg_spot[gone]
+            extra_values = np.asarray(gone_values, np.float64)
+            if (np.bincount(extra_rows, minlength=n_rows) >= g.bg_n).any():
+                return None
         if getattr(coded, "paired", False):
             # Y' * 256 + C: the two bytes span a few codes each; their product is small.
             hi = codes >> 8
@@ -1078,6 +1072,8 @@ class SpotIntegrator:
             comb = rows * np.int32(span)
             comb += key
             hist = np.bincount(comb, minlength=n_rows * span)
+            if gone.size:
+                np.subtract.at(hist, comb[gone], 1)
             nz = np.flatnonzero(hist)
             row = nz // span
             first = np.searchsorted(row, np.arange(n_rows))
@@ -1098,6 +1094,10 @@ class SpotIntegrator:
             order = np.argsort(cv, axis=1, kind="stable")
             return _clip_compact(np.take_along_axis(cv, order, axis=1),
                                  np.take_along_axis(cc, order, axis=1), self.clip_sigma)
+        if gone.size:
+            keep = np.ones(codes.size, bool)
+            keep[gone] = False
+            codes, rows = codes[keep], rows[keep]
         keys = coded.rank[codes]
         row_n = np.bincount(rows, minlength=n_rows)
         cuts = np.cumsum(row_n)
@@ -1107,25 +1107,41 @@ class SpotIntegrator:
         return _clip_runs(keys, row_starts, self.clip_sigma, key_value=coded.rank_value,
                           extra_rows=extra_rows, extra_values=extra_values)
 
-    def _replaced_mask(self, replaced: NDArray[np.intp]) -> NDArray[np.bool_]:
-        cached = self.__dict__.get("_replaced")
-        if cached is not None and cached[0] is replaced:
-            return cached[1]  # type: ignore[no-any-return]
-        mask = np.zeros(self.geometry.shape[0] * self.geometry.shape[1], bool)
-        mask[replaced] = True
-        self._replaced = (replaced, mask)
-        return mask
+    def _entries_at(self, crop_idx: NDArray[np.intp]) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+        """Where these unshifted crop indices occur among the gathered pixels (aperture
+        then background entries; a shared background region lists a pixel once per
+        spot): positions, and for each the index into ``crop_idx``."""
+        fast = self._flat_indices()
+        order = fast.get("pix_order")
+        if order is None:
+            order = np.argsort(fast["pix"], kind="stable")
+            fast["pix_order"], fast["pix_sorted"] = order, fast["pix"][order]
+        srt = fast["pix_sorted"]
+        left = np.searchsorted(srt, crop_idx, "left")
+        right = np.searchsorted(srt, crop_idx, "right")
+        counts = right - left
+        total = int(counts.sum())
+        if total == 0:
+            z = np.zeros(0, np.intp)
+            return z, z
+        which = np.repeat(np.arange(crop_idx.size), counts)
+        within = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
+        pos = order[np.repeat(left, counts) + within]
+        k = np.argsort(pos, kind="stable")
+        return pos[k].astype(np.intp), which[k].astype(np.intp)
 
-    def add(self, linear_crop: NDArray[np.floating], *, time_s: float,
+    def add(self, linear_crop: NDArray[np.floating] | None, *, time_s: float,
             shift_px: tuple[float, float] = (0.0, 0.0),
             saturated_crop: NDArray[np.bool_] | None = None, coded: Any = None,
-            replaced: NDArray[np.intp] | None = None) -> None:
+            replaced: NDArray[np.intp] | None = None,
+            replaced_values: NDArray[np.floating] | None = None) -> None:
         """Integrate one frame.
 
         Parameters
         ----------
-        linear_crop : (h, w) ndarray of float32
+        linear_crop : (h, w) ndarray of float32, or None
             Linear values (dark subtracted when a dark is used) of ``self.region``.
+            None: the values are read from ``coded`` (only the pixels used).
         time_s : float
             Frame time.
         shift_px : (float, float)
@@ -1135,25 +1151,48 @@ class SpotIntegrator:
             Saturated pixels of the same crop.
         coded : CodedCrop, optional
             The same crop as codes (:func:`ecl_quant.radiometry.code_values`): anything
-            with ``codes`` (h, w), ``rank`` (a rank per code, sorting like the values)
-            and ``rank_value`` (the value of each rank). ``linear_crop`` must equal
-            ``rank_value[rank[codes]]`` except at ``replaced``. Makes the background
-            statistics faster; the results are the same.
+            with ``codes`` (h, w), ``table`` (the value of each code), ``rank`` (a rank
+            per code, sorting like the values), ``rank_value`` (the value of each rank)
+            and ``paired``. ``linear_crop``, when given, must equal ``table[codes]``
+            except at ``replaced``. Makes the background statistics faster; the results
+            are the same.
         replaced : (k,) ndarray of int, optional
-            Flat crop indices whose value in ``linear_crop`` was replaced (hot pixels):
-            their codes are not used.
+            Flat crop indices whose value is not their code's (hot pixels filled in).
+        replaced_values : (k,) ndarray of float, optional
+            Their values; required with ``replaced`` when ``linear_crop`` is None.
         """
         g = self.geometry
-        if linear_crop.shape != g.shape:
+        if coded is not None and coded.codes.shape != g.shape:
+            raise SpotError(f"coded crop is {coded.codes.shape} but the integrator "
+                            f"expects {g.shape}")
+        if linear_crop is None:
+            if coded is None:
+                raise SpotError("give linear_crop or coded")
+            if replaced is not None and replaced.size and replaced_values is None:
+                raise SpotError("replaced pixels need replaced_values when no linear_crop "
+                                "is given")
+        elif linear_crop.shape != g.shape:
             raise SpotError(f"crop is {linear_crop.shape} but the integrator expects {g.shape}")
         sx, sy, _ = self.clip_shift(*shift_px)
         off = sy * g.shape[1] + sx
-        flat = linear_crop.reshape(-1)
         n = self.n_spots
         fast = self._flat_indices()
-        # Aperture then background pixels in one gather (no index arithmetic unshifted).
-        pix = flat[fast["pix"] + off if off else fast["pix"]]
         n_ap = g.ap_idx.size
+        # Aperture then background pixels in one gather (no index arithmetic unshifted).
+        where = fast["pix"] + off if off else fast["pix"]
+        if replaced is not None and replaced.size:
+            hit, which = self._entries_at(replaced - off)
+        else:
+            hit = which = np.zeros(0, np.intp)
+        pix_codes = None
+        if linear_crop is None:
+            pix_codes = coded.codes.reshape(-1)[where]
+            pix = np.take(coded.table, pix_codes)
+            if hit.size:
+                assert replaced_values is not None
+                pix[hit] = np.asarray(replaced_values, pix.dtype)[which]
+        else:
+            pix = linear_crop.reshape(-1)[where]
         ap = pix[:n_ap]
         starts = fast["starts"]
 
@@ -1169,10 +1208,10 @@ class SpotIntegrator:
         bg_pix = pix[n_ap:]
         clipped = None
         if coded is not None and starts is not None:
-            if coded.codes.shape != g.shape:
-                raise SpotError(f"coded crop is {coded.codes.shape} but the integrator "
-                                f"expects {g.shape}")
-            clipped = self._clipped_from_codes(coded, off, replaced, flat)
+            bg_codes = (pix_codes[n_ap:] if pix_codes is not None
+                        else coded.codes.reshape(-1)[where[n_ap:]])
+            gone = hit[hit >= n_ap] - n_ap
+            clipped = self._clipped_from_codes(coded, bg_codes, gone, bg_pix[gone])
         if clipped is not None:
             med, mean, sd, cnt = clipped
         elif starts is not None and np.isfinite(bg_pix).all():
@@ -1180,8 +1219,15 @@ class SpotIntegrator:
             med, mean, sd, cnt = _clipped_rows_sorted(np.split(bg_pix, fast["bg_cuts"]),
                                                       self.clip_sigma)
         else:
-            med, mean, sd, cnt = self._clipped_stats(flat[fast["bg"] + off if off
-                                                          else fast["bg"]])
+            if linear_crop is None:  # padded rows from the gathered values
+                padded = np.full(fast["bg"].shape, np.nan, np.float32)
+                valid = np.arange(padded.shape[1])[None, :] < g.bg_n[:, None]
+                padded[valid] = bg_pix
+                med, mean, sd, cnt = self._clipped_stats(padded)
+            else:
+                flat = linear_crop.reshape(-1)
+                med, mean, sd, cnt = self._clipped_stats(flat[fast["bg"] + off if off
+                                                              else fast["bg"]])
         level = mean if self.estimator == "mean" else med
         if saturated_crop is not None and saturated_crop.any():
             sflat = saturated_crop.reshape(-1)[g.ap_idx + off] & g.ap_sat
@@ -1205,10 +1251,15 @@ class SpotIntegrator:
         stats = np.full((2 * n, 3), np.nan)
         if len(self._prev) == 3 and len({p[1] for p in self._prev}) == 1:
             x0, x1, x2 = (p[0] for p in self._prev)
-            d2 = (x2.astype(np.float64) - 2.0 * x1 + x0)
+            # float32 differences (relative error ~1e-6 of a noise-sized difference),
+            # summed in float64.
+            d2 = x2 - x1
+            d2 -= x1
+            d2 += x0
+            d2 *= d2
             cnt_g = fast["group_n"]
             lev = group_sums(x1, 2 * n)
-            sq = group_sums(d2 * d2, 2 * n)
+            sq = group_sums(d2, 2 * n)
             stats = np.column_stack([cnt_g, lev, sq])
             if saturated_crop is not None:
                 stats[:n][sat > 0] = np.nan

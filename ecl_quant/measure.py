@@ -91,6 +91,9 @@ CURVES_COLUMNS = ("spot", "frame", "time_s", "signal", "signal_se", "background"
 OUTPUT_FILES = ("spots.csv", "curves.csv", "spots.json", "run.json", "overlay.png", "curves.png")
 #: Hidden file present while write_measure_outputs runs (marks an unfinished folder).
 _WRITING_MARKER = ".ecl-quant-writing"
+#: With spots given, the overlay projection is the max over every k-th frame, k up to
+#: this (1 below 200 frames, 2 below 300, ...; see run.json analysis.projection_every).
+PROJECTION_EVERY = 4
 
 
 @dataclass(frozen=True)
@@ -601,6 +604,9 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
     exposures: list[float | None] = []
     clipped_any = False
     n_pass1 = len(shifts)
+    # The overlay's max projection (spots given) from every k-th frame: an emission lasts
+    # many frames, and the projection is for display and the batch sharpness check.
+    proj_every = max(1, min(PROJECTION_EVERY, (rec.n_frames or 0) // 100))
     index = 0
     hot_fill: tuple[NDArray[np.intp], NDArray[np.intp], NDArray[np.float32]] | None = None
     with _progress(rec.n_frames, "measure", progress) as bar:
@@ -618,25 +624,41 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
                 sh = (0.0, 0.0, 0.0, False)
                 shifts.append(sh)
             # Codes and their table when one applies (no dark: a subtracted dark makes
-            # every pixel's value its own); the background statistics then sort codes.
+            # every pixel's value its own): the integrator then reads only the pixels it
+            # uses and sorts codes, not floats. The whole crop is converted only for the
+            # first frame (hot pixels) and the frames of the overlay projection.
             coded = (code_values(frame, channel, spec, region=region)
                      if master is None else None)
-            lin = coded.values() if coded is not None else linear(frame, region)
+            project = crop_acc is not None and index % proj_every == 0
+            lin = None
+            if coded is None:
+                lin = linear(frame, region)
+            elif hot_fill is None or project:
+                lin = coded.values()
             if hot_fill is None:
+                assert lin is not None
                 hot_fill = _hot_pixel_fill(
                     lin, None if master is None else hot_pixel_map(master)[region])
+            fill = None
             if hot_fill[0].size:
-                flat = lin.reshape(-1)
-                flat[hot_fill[0]] = (flat[hot_fill[1]] * hot_fill[2]).sum(axis=1)
+                if lin is not None:
+                    flat = lin.reshape(-1)
+                    flat[hot_fill[0]] = (flat[hot_fill[1]] * hot_fill[2]).sum(axis=1)
+                    fill = flat[hot_fill[0]]
+                else:  # the same numbers from the codes of the (non-hot) neighbours
+                    assert coded is not None
+                    nb = np.take(coded.table, coded.codes.reshape(-1)[hot_fill[1]])
+                    fill = (nb * hot_fill[2]).sum(axis=1)
             sat = saturation_mask(frame, channel, region=region, level=settings.saturation_level)
             if hot_fill[0].size:
                 # A hot pixel sits at the top code in every frame whatever the light: it was
                 # replaced above, so it must not mark the spot as saturated either.
                 sat.flat[hot_fill[0]] = False
             integ.add(lin, time_s=frame.time_s, shift_px=(sh[0], sh[1]), saturated_crop=sat,
-                      coded=coded, replaced=hot_fill[0])
+                      coded=coded, replaced=hot_fill[0], replaced_values=fill)
             clipped_any |= integ.clip_shift(sh[0], sh[1])[2]
-            if crop_acc is not None:
+            if project:
+                assert crop_acc is not None and lin is not None
                 crop_acc.add(lin, (int(round(sh[0])), int(round(sh[1]))))
             exposures.append(frame.exposure_s)
             index += 1
@@ -759,6 +781,7 @@ def measure(source: Any, *, spots: str | Path | SpotSet | None = None,
         "drift": drift_info, "crop": [region[0].start, region[0].stop, region[1].start,
                                       region[1].stop],
         "hot_pixels_filled": 0 if hot_fill is None else int(hot_fill[0].size),
+        "projection_every": proj_every if crop_acc is not None else 1,
         "hot_pixel_rule": "isolated pixels of the first frame's crop (and the master dark's "
                           "hot pixels) replaced in every frame by the mean of their 4 "
                           "non-hot neighbours",

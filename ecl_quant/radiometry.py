@@ -875,12 +875,16 @@ def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] |
         peak = y_off + y_span
         luma = frame.data[r0:r1, c0:c1]
         # Integer codes: code >= t exactly when code >= ceil(t) (a faster comparison).
-        mask = np.asarray(luma >= _code_threshold(level * peak, luma.dtype))
+        y_code = _code_threshold(level * peak, luma.dtype)
+        y_min = (_video_candidate_luma(frame, b, level - 1e-5)
+                 if frame.chroma is not None and luma.size else math.inf)
+        if luma.size and float(luma.max()) < min(float(y_code), math.floor(y_min)):
+            return np.zeros(luma.shape, dtype=bool)  # no pixel can reach the level
+        mask = np.asarray(luma >= y_code)
         if frame.chroma is not None and luma.size:
             # R', G', B' are computed only where Y' is high enough for the crop's chroma
             # extremes to lift one of them to the level (the 1e-5 margin covers the
             # float32 rounding of the values); the same values as _video_rgb there.
-            y_min = _video_candidate_luma(frame, b, level - 1e-5)
             cand = np.flatnonzero(luma >= math.floor(y_min))
             if cand.size:
                 if cand.size > luma.size // 4:  # many candidates: the whole crop at once

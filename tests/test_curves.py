@@ -404,12 +404,13 @@ def test_integrator_from_codes_equals_the_float_path(bits, pair):
     ss = SpotSet((make_spot(1, "circle", (30.0, 26.0, 6.0)), make_spot(2, "circle", (62.0, 28.0, 5.0))))
     a = SpotIntegrator(ss, shape, pad_px=3)
     b = SpotIntegrator(ss, shape, pad_px=3)
+    c = SpotIntegrator(ss, shape, pad_px=3)  # values read from the codes only
     region = a.region
     # Replaced pixels: some in each annulus (unshifted positions) and one in an aperture.
     g = a.geometry
     hot = np.sort(np.concatenate([g.bg_flat[[3, 40, 90]], g.bg_flat[g.bg_spot == 1][[5, 60]],
                                   g.ap_idx[[10]]])).astype(np.intp)
-    for i, shift in enumerate([(0, 0), (2, -1), (-3, 2)]):
+    for i, shift in enumerate([(0, 0), (0, 0), (0, 0), (2, -1), (2, -1), (2, -1), (-3, 2)]):
         coded = _coded_frame(rng, shape, bits=bits, pair=pair)
         coded.codes = np.ascontiguousarray(coded.codes[region])
         lin = np.take(coded.table, coded.codes)
@@ -417,6 +418,8 @@ def test_integrator_from_codes_equals_the_float_path(bits, pair):
         lin.reshape(-1)[hot] = lin.reshape(-1)[hot - 1] * np.float32(1.0007)
         a.add(lin, time_s=float(i), shift_px=shift, coded=coded, replaced=hot)
         b.add(lin.copy(), time_s=float(i), shift_px=shift)
+        c.add(None, time_s=float(i), shift_px=shift, coded=coded, replaced=hot,
+              replaced_values=lin.reshape(-1)[hot])
         # numpy reference on the same annulus pixels (shifted like the masks).
         g = a.geometry
         off = shift[1] * g.shape[1] + shift[0]
@@ -427,6 +430,10 @@ def test_integrator_from_codes_equals_the_float_path(bits, pair):
             assert a.raw_arrays()["bg"][-1, k] == pytest.approx(ref[1], rel=1e-9)
             assert a.raw_arrays()["bg_sd"][-1, k] == pytest.approx(ref[2], rel=1e-9)
             assert a.raw_arrays()["bg_n"][-1, k] == ref[3]
-    ra, rb = a.raw_arrays(), b.raw_arrays()
+    ra, rb, rc = a.raw_arrays(), b.raw_arrays(), c.raw_arrays()
     for key in ("sum", "sum_w2", "bg", "bg_sd", "bg_n"):
         np.testing.assert_allclose(ra[key], rb[key], rtol=1e-12, atol=0)
+        np.testing.assert_allclose(rc[key], rb[key], rtol=1e-12, atol=0)
+    assert c.noise_observations()[0].size == 2 * 2 * 2  # frames 3 and 6, 2 x 2 groups
+    for x, y in zip(c.noise_observations(), b.noise_observations()):
+        np.testing.assert_allclose(x, y, rtol=1e-12)
