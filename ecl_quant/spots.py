@@ -1154,12 +1154,10 @@ def downscale_for_drift(plane: NDArray[np.generic], factor: int) -> NDArray[np.f
     while rest % 2 == 0:
         twos, rest = twos + 1, rest // 2
     n_int = max(0, twos - 1) if src.dtype != np.float32 else twos
-    for k in range(n_int):
+    for _ in range(n_int):
         src = _halve(src)
-        if channel is not None and k == 0:  # one channel of the half-size image
-            src, channel = np.ascontiguousarray(src[..., channel]), None
-    if channel is not None:
-        src = np.ascontiguousarray(src[..., channel])
+    if channel is not None:  # downscaling all channels costs less than copying one out
+        src = cv2.extractChannel(src, channel)
     small = np.asarray(src, dtype=np.float32)
     for _ in range(twos - n_int):
         small = _halve(small)
@@ -1363,11 +1361,14 @@ def _prepare_for_drift(small: NDArray[np.float32], highpass_px: float) -> NDArra
 class DriftTracker:
     """Per-frame shift of a hand-held recording against an adaptive reference.
 
-    Each frame's drift plane is box-downscaled by ``factor`` (cv2.resize INTER_AREA);
+    Each frame's drift plane is box-downscaled by ``factor`` (:func:`downscale_for_drift`);
     a 3 x 3 median removes isolated hot pixels and subtracting a wide Gaussian blur
     (``highpass_px`` downscaled pixels) removes the smooth ambient leak, both fixed to the
     sensor, leaving what moves with the card (its texture and the spots). The result is
-    phase-correlated with the reference (:func:`estimate_shift`). The first frame is the
+    phase-correlated with the reference (:func:`estimate_shift`; the reference's windowed
+    spectrum and blurred copy are kept until it is replaced, and a frame that becomes
+    the reference brings its own, so each frame costs one forward and one inverse DFT).
+    The first frame is the
     initial reference; a later frame replaces it when its contrast (SD of the prepared
     frame) exceeds ``refresh_ratio`` times the reference's, so the reference follows the
     spots as they light up. When the response is below ``min_response`` (nothing to
