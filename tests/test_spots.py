@@ -490,9 +490,11 @@ def test_downscale_for_drift_channel_views_and_strided_planes():
         np.testing.assert_array_equal(downscale_for_drift(plane, 8),
                                       downscale_for_drift(np.ascontiguousarray(rgb[..., c]), 8))
     np.testing.assert_array_equal(rgb, rgb0)
-    rot = np.rot90(rgb)[..., 1]  # not a plain channel view: falls back to a copy
-    np.testing.assert_array_equal(downscale_for_drift(rot, 4),
-                                  downscale_for_drift(np.ascontiguousarray(rot), 4))
+    grey = rgb[..., 0].copy()
+    for view in (np.rot90(rgb)[..., 1], rgb[::-1][..., 0], grey[::-1], np.rot90(grey),
+                 np.rot90(grey, 2), grey[:, ::-1]):  # rotated / flipped: copied first
+        np.testing.assert_array_equal(downscale_for_drift(view, 4),
+                                      downscale_for_drift(np.ascontiguousarray(view), 4))
     buf = rng.integers(0, 256, (96, 192)).astype(np.uint8)
     np.testing.assert_array_equal(downscale_for_drift(buf[:, :160], 8),
                                   downscale_for_drift(buf[:, :160].copy(), 8))
