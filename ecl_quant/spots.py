@@ -1120,7 +1120,8 @@ def _interleaved_parent(plane: NDArray[np.generic]) -> tuple[NDArray[np.generic]
 def _halve(img: NDArray[np.generic]) -> NDArray[np.generic]:
     """2 x 2 box average (cv2.resize INTER_AREA, even sizes); integer types are rounded."""
     h, w = img.shape[:2]
-    return cv2.resize(img, (w // 2, h // 2), interpolation=cv2.INTER_AREA)  # type: ignore[return-value]
+    out: NDArray[np.generic] = cv2.resize(img, (w // 2, h // 2), interpolation=cv2.INTER_AREA)
+    return out
 
 
 def downscale_for_drift(plane: NDArray[np.generic], factor: int) -> NDArray[np.float32]:
@@ -1272,7 +1273,8 @@ def _phase_correlate(ref_conj: NDArray[np.complexfloating],
     response the sum of the 5 x 5 samples divided by the number of DFT samples. Unlike
     cv2.phaseCorrelate, lags wrap around the periodic correlation surface instead of
     going through a quadrant swap, which in OpenCV 5.0 puts the zero lag half a pixel
-    off on an odd-sized axis; on even sizes the two agree.
+    off on an odd-sized (or padded to odd) axis; on even sizes that need no padding the
+    two agree (checked with a window, as the tracker uses).
 
     Returns
     -------
