@@ -47,7 +47,11 @@ import numpy as np
 from numpy.typing import NDArray
 
 #: Bump when the way inputs are made changes (invalidates the cache).
-INPUTS_VERSION = 1
+INPUTS_VERSION = 2
+
+#: Longest key-frame interval of the benchmark videos, s. Phone camera encoders write a
+#: key frame about every second (x264's default would allow up to 250 frames).
+VIDEO_GOP_S = 1.0
 
 #: Encoder preset of the benchmark videos: High profile, CABAC, B-frames (like a phone's
 #: hardware encoder), fast enough to make 3600 frames of 1080p in about a minute.
@@ -118,7 +122,7 @@ class BenchConfig:
 
         doc = {k: v for k, v in asdict(self).items() if k not in ("repeats", "batch_repeats")}
         doc.update(inputs=INPUTS_VERSION, simulator=SIMULATOR_VERSION, preset=VIDEO_PRESET,
-                   ecl_quant=__version__)
+                   gop_s=VIDEO_GOP_S, ecl_quant=__version__)
         text = json.dumps(doc, sort_keys=True)
         return hashlib.sha256(text.encode()).hexdigest()[:10]
 
@@ -220,7 +224,8 @@ def _write_videos(cfg: BenchConfig, targets: dict[Path, int]) -> dict[str, Any]:
         cc.colorspace = cc.color_primaries = cc.color_trc = 1  # BT.709 (H.273)
         cc.color_range = 1  # limited (MPEG) range
         stream.bit_rate = cfg.bitrate
-        stream.options = {"preset": VIDEO_PRESET}
+        stream.options = {"preset": VIDEO_PRESET,
+                          "g": str(max(1, int(round(VIDEO_GOP_S * cfg.fps))))}
         outs.append((path, tmp, n, container, stream))
 
     def to_frame(lin: NDArray[np.float32]) -> Any:
@@ -249,6 +254,7 @@ def _write_videos(cfg: BenchConfig, targets: dict[Path, int]) -> dict[str, Any]:
     for path, tmp, _n, _c, _s in outs:
         tmp.replace(path)
     return {"codec": "libx264", "preset": VIDEO_PRESET, "bitrate": cfg.bitrate,
+            "gop_frames": max(1, int(round(VIDEO_GOP_S * cfg.fps))),
             "pix_fmt": "yuv420p", "matrix": "bt709", "range": "limited",
             "time_base": "1/600", "fps": cfg.fps}
 

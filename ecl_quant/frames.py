@@ -684,8 +684,16 @@ class Recording:
     _fps: float | None = field(default=None, repr=False)
     _max_pixels: int = field(default=DEFAULT_MAX_PIXELS, repr=False)
 
-    def frames(self) -> Iterator[Frame]:
+    def frames(self, *, key_only: bool = False) -> Iterator[Frame]:
         """A fresh generator of the recording's frames, decoded one at a time.
+
+        Parameters
+        ----------
+        key_only : bool, optional
+            Video only: decode just the key (intra-coded) frames, which need no other
+            frame (FFmpeg ``skip_frame=NONKEY``): a sparse sample at a small fraction
+            of the cost. Their ``index`` counts the key frames; ``time_s`` is their true
+            time. Stills and raw recordings yield every frame.
 
         Raises
         ------
@@ -698,7 +706,7 @@ class Recording:
             return self._still_frames()
         if self.kind == "raw":
             return self._raw_frames()
-        return self._video_frames()
+        return self._video_frames(key_only=key_only)
 
     def __iter__(self) -> Iterator[Frame]:
         return self.frames()
@@ -761,7 +769,7 @@ class Recording:
             dngs.close()
 
     # -- video
-    def _video_frames(self) -> Iterator[Frame]:
+    def _video_frames(self, *, key_only: bool = False) -> Iterator[Frame]:
         import av
 
         path = Path(self.path)
@@ -769,6 +777,8 @@ class Recording:
         try:
             stream = container.streams.video[0]
             stream.thread_type = "AUTO"
+            if key_only:
+                stream.codec_context.skip_frame = "NONKEY"
             t0: float | None = None
             t_prev = -math.inf
             fallback_rate = self._fps or _float_or_none(self.metadata.get("average_rate"))

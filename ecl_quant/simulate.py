@@ -320,6 +320,9 @@ class SimulationSpec:
         Target bit rate in bit/s (average-bitrate mode instead of crf).
     video_preset : str
         x264 preset.
+    gop_frames : int or None
+        Longest key-frame interval of H.264 (x264 ``g``); None: x264's default (250).
+        Phone encoders write a key frame about every second.
     start_time : str
         ISO date-time of the first frame (EXIF DateTimeOriginal).
     seed : int
@@ -362,6 +365,7 @@ class SimulationSpec:
     crf: int | None = 18
     bitrate: int | None = None
     video_preset: str = "veryfast"
+    gop_frames: int | None = None
     start_time: str = "2024-05-14T09:30:00"
     seed: int = 0
 
@@ -429,6 +433,8 @@ class SimulationSpec:
             raise InputFormatError("jpeg_subsampling must be '4:4:4', '4:2:2' or '4:2:0'")
         if self.crf is None and self.bitrate is None and self.encoding == "h264":
             raise InputFormatError("give crf or bitrate for H.264")
+        if self.gop_frames is not None and not int(self.gop_frames) >= 1:
+            raise InputFormatError("gop_frames must be a whole number >= 1")
         try:
             _dt.datetime.fromisoformat(self.start_time)
         except ValueError as err:
@@ -1159,6 +1165,8 @@ def _write_video(
             cc.color_trc = _AV_BT709
             cc.color_range = _AV_RANGE_MPEG
             opts = {"preset": spec.video_preset}
+            if spec.gop_frames is not None:
+                opts["g"] = str(int(spec.gop_frames))
             if spec.bitrate is not None:
                 stream.bit_rate = int(spec.bitrate)
             else:
@@ -1196,6 +1204,7 @@ def _write_video(
         "time_base": "1/600",
         "vfr": bool(spec.vfr),
         "preset": spec.video_preset,
+        "gop_frames": spec.gop_frames,
         "metadata": "none",
         "timing": "pts",
     }

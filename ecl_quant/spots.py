@@ -27,6 +27,7 @@ Proc. IEEE Int. Conf. Cybernetics and Society, 163.
 
 from __future__ import annotations
 
+import copy
 import json
 import math
 import warnings
@@ -1482,6 +1483,19 @@ class DriftTracker:
         small = _prepare_for_drift(downscale_for_drift(plane, self.factor), self.highpass_px)
         mean, sd = cv2.meanStdDev(small)
         return _Prepared(small, self._window, 1.0, mean=float(mean[0, 0])), float(sd[0, 0])
+
+    def resume(self) -> DriftTracker:
+        """A tracker for another pass over the same recording, from its first frame.
+
+        It keeps this tracker's reference (and its origin), so the shifts of both passes
+        share one origin: spots found on a projection registered by this tracker (e.g.
+        from the key frames only) are then where the new pass's masks expect them. Its
+        last accepted shift starts at (0, 0), the first frame's. This tracker is not
+        changed.
+        """
+        new = copy.copy(self)
+        new._last = (0.0, 0.0)
+        return new
 
     def update(self, plane: NDArray[np.generic]) -> tuple[float, float, float, bool]:
         """Shift of this frame's content relative to the reference, in full-resolution px.

@@ -410,3 +410,76 @@ def test_hot_pixel_at_top_code_inside_an_aperture_is_not_saturation(tmp_path):
     assert np.isfinite(hot.loc[1, "integral"])
     # The filled pixel changes the integral by far less than its standard error.
     assert abs(hot.loc[1, "integral"] - clean.loc[1, "integral"]) < clean.loc[1, "integral_se"]
+
+
+# ------------------------------------------------------------------ key-frame detection
+
+
+def test_key_frames_are_the_codecs_key_frames(tmp_path):
+    # frames(key_only=True) must yield exactly the frames PyAV (reference decoder) flags
+    # as key frames in a full decode, with the same times and pixels.
+    import av
+
+    from ecl_quant.frames import open_recording
+
+    path = tmp_path / "gop.mp4"
+    simulate_recording(path, SimulationSpec(**{**CARD, "n_frames": 60}, encoding="h264",
+                                            crf=12, gop_frames=10, seed=21))
+    rec = open_recording(path)
+    keys = list(rec.frames(key_only=True))
+    with av.open(str(path)) as c:
+        flags = [f.key_frame for f in c.decode(c.streams.video[0])]
+    full = list(rec.frames())
+    expected = [fr for fr, k in zip(full, flags) if k]
+    assert len(keys) == len(expected) >= 6
+    for a, b in zip(keys, expected):
+        assert a.time_s == b.time_s
+        np.testing.assert_array_equal(a.data, b.data)
+
+
+@pytest.fixture(scope="module")
+def gop_card(tmp_path_factory):
+    # A phone-like encode: a key frame every second (10 s, 30 fps).
+    path = tmp_path_factory.mktemp("gop") / "card.mp4"
+    spec = SimulationSpec(**{**CARD, "n_frames": 300, "onset_s": 2.0}, encoding="h264", crf=10,
+                          gop_frames=30, seed=22)
+    truth = simulate_recording(path, spec)
+    return path, truth
+
+
+def test_detection_on_key_frames_finds_the_same_spots(gop_card):
+    # With key frames at most 1 s apart the detection pass reads only those (auto); the
+    # spots, their positions and the integrals must match detection on every frame, and
+    # both must match the simulator's truth (row-major, log-log slope 1).
+    path, truth = gop_card
+    keyed = measure(path)
+    every = measure(path, settings=MeasureSettings(detect_frames="all"))
+    assert keyed.provenance["detection"]["frames"] == "key"
+    # 10 periodic key frames, plus any the encoder adds at a scene change (x264 scenecut).
+    assert 10 <= keyed.provenance["detection"]["projection_frames"] <= 30
+    assert every.provenance["detection"]["frames"] == "all"
+    _check_row_major(truth, keyed)
+    a, b = keyed.spots_table, every.spots_table
+    # Coordinates are relative to the card at the first frame with structure, which the
+    # key frames see a little later on this drifting card: one common offset (< 3.5 px,
+    # the drift), then the same layout.
+    for col in ("x_px", "y_px"):
+        d = a[col].to_numpy() - b[col].to_numpy()
+        assert abs(np.median(d)) < 3.5
+        np.testing.assert_allclose(d - np.median(d), 0.0, atol=0.5)
+    # The aperture radius comes from the projection (14.7 vs 15.4 px here), so integrals
+    # move a little, well inside their standard errors (common practice: a method
+    # choice should shift results by much less than their uncertainty).
+    diff = np.abs(a["integral"].to_numpy() - b["integral"].to_numpy())
+    assert np.all(diff < 0.6 * b["integral_se"].to_numpy()), diff / b["integral_se"].to_numpy()
+    slope, r2 = _loglog(truth, keyed)
+    assert slope == pytest.approx(1.0, abs=0.02) and r2 > 0.999
+
+
+def test_sparse_key_frames_fall_back_to_every_frame(h264_card):
+    # x264's default interval (250 frames) leaves one key frame in 150: too sparse to
+    # sample a pulse, so auto detection reads every frame and says why.
+    _, _, res = h264_card
+    det = res.provenance["detection"]
+    assert det["frames"] == "all"
+    assert "key frames" in det["key_frames"] and "need >= 8" in det["key_frames"]
