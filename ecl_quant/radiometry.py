@@ -823,9 +823,14 @@ def _table_codes(frame: Frame, channel: str, spec: TransferSpec,
         if data.dtype not in (np.uint8, np.uint16) or channel == "raw" or (
                 data.ndim == 3 and channel == "luma"):
             return None
-        crop = data[r0:r1, c0:c1] if data.ndim == 2 else data[r0:r1, c0:c1, _RGB_INDEX[channel]]
         if float(frame.max_code) != float(np.iinfo(data.dtype).max):
             return None
+        if data.ndim == 2:
+            crop = data[r0:r1, c0:c1]
+        else:  # one contiguous copy of the channel (cv2: a fast strided read)
+            import cv2
+
+            crop = cv2.extractChannel(data[r0:r1, c0:c1], _RGB_INDEX[channel])
         return ("still", "red", data.dtype.str, "", "", False, spec.kind, spec.gamma), crop
     if frame.kind != "video" or data.dtype != np.uint8 or frame.bit_depth != 8:
         return None
