@@ -409,6 +409,10 @@ def _add_measure(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--detect", default="threshold", choices=["threshold", "log"],
                    help="spot detection: threshold + connected components, or Laplacian of "
                    "Gaussian (default: threshold)")
+    p.add_argument("--detect-frames", default="auto", choices=["auto", "all", "key"],
+                   help="frames that spot detection reads: a video's key frames (fast), "
+                   "every frame, or auto: key frames when they are at most 2 s apart "
+                   "(default: auto)")
     p.add_argument("--no-drift", action="store_true",
                    help="do not register frames (tripod recordings)")
     p.add_argument("--noise-from", metavar="CAMERA_JSON", default=None,
@@ -447,7 +451,8 @@ def _run_measure(args: argparse.Namespace) -> int:
         read_var, gain, source = camera_noise_model(args.noise_from)
         noise = {"read_var": read_var, "gain": gain, "noise_source": source}
     settings = MeasureSettings(channel=args.channel, transfer=args.transfer, fps=args.fps,
-                               detect=args.detect, drift=not args.no_drift, **noise)
+                               detect=args.detect, detect_frames=args.detect_frames,
+                               drift=not args.no_drift, **noise)
     result = measure(src, spots=args.spots, dark=args.dark, settings=settings,
                      progress=not args.quiet)
     if len(result.spot_set) == 0:
