@@ -856,8 +856,9 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
         "max_shift_px": float(shift_mag.max()) if shift_mag.size else 0.0,
         "limit_px": settings.max_shift_px, "clipped": bool(clipped_any), "drifted": drifted,
         "frames_drifted": int(frame_drifted.sum()),
-        "method": "phase correlation (cv2.phaseCorrelate) on the luma/channel plane box-"
-                  "downscaled to <= %d px, sub-pixel refined; masks moved by whole pixels"
+        "method": "phase correlation (the estimator of cv2.phaseCorrelate, on cached "
+                  "spectra) of the luma/channel plane block-averaged to <= %d px, "
+                  "sub-pixel refined; masks moved by whole pixels"
                   % settings.drift_target_px if settings.drift else "off"}
     analysis = {
         "noise_model": noise.to_dict(), "baseline": baseline_rule,
