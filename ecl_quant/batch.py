@@ -945,15 +945,35 @@ def _pool_context() -> Any:
     # forkserver/spawn: a clean child, safe when the parent runs threads (dask, tqdm).
     ctx = mp.get_context("forkserver" if "forkserver" in methods else "spawn")
     if ctx.get_start_method() == "forkserver":
-        ctx.set_forkserver_preload(["ecl_quant.batch"])
+        # Imported once in the server, shared by every forked worker (each would
+        # otherwise pay seconds of imports itself). None of these starts a thread on
+        # import; a module that fails to import is skipped by multiprocessing.
+        ctx.set_forkserver_preload(list(_WORKER_PRELOAD))
     return ctx
+
+
+_WORKER_PRELOAD = ("ecl_quant.batch", "ecl_quant.measure", "ecl_quant.radiometry",
+                   "ecl_quant.calibration", "ecl_quant.report", "av", "PIL.Image",
+                   "PIL.JpegImagePlugin", "PIL.PngImagePlugin", "scipy.ndimage",
+                   "scipy.signal", "scipy.fft", "scipy.stats", "matplotlib.figure",
+                   "matplotlib.backends.backend_agg", "matplotlib.patches")
+
+
+def _worker_setup() -> None:
+    """Pool initializer when the workers fill the cores (see frames.use_one_core)."""
+    from .frames import use_one_core
+
+    use_one_core()
 
 
 def _iter_pool(func: Callable[[Any], Any], items: Sequence[Any],
                n_workers: int) -> Iterator[tuple[int, Any, BaseException | None]]:
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
-    pool = ProcessPoolExecutor(max_workers=n_workers, mp_context=_pool_context())
+    # As many workers as cores (or more): each decodes in its own thread only.
+    busy = n_workers >= (os.cpu_count() or 1)
+    pool = ProcessPoolExecutor(max_workers=n_workers, mp_context=_pool_context(),
+                               initializer=_worker_setup if busy else None)
     try:
         futures = {pool.submit(func, item): i for i, item in enumerate(items)}
         for fut in as_completed(futures):

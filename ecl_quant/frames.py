@@ -70,6 +70,18 @@ VIDEO_SUFFIXES = (".mp4", ".mov", ".m4v", ".avi", ".mkv", ".webm", ".3gp")
 #: OpenCV and LibRaw release the GIL while they decode, so decoding the next file
 #: overlaps the processing of this one); 0 decodes in the consumer's thread.
 READ_AHEAD = 2
+#: FFmpeg decoder threading of videos: "AUTO" (frame and slice threads on every core) or
+#: "NONE" (one thread: the least CPU per frame, for processes that already fill the
+#: cores, such as the workers of a parallel batch).
+VIDEO_THREAD_TYPE = "AUTO"
+
+
+def use_one_core() -> None:
+    """Decode in the calling thread only (no read-ahead, one decoder thread): for worker
+    processes that run side by side on every core, where extra threads only contend."""
+    global READ_AHEAD, VIDEO_THREAD_TYPE
+    READ_AHEAD = 0
+    VIDEO_THREAD_TYPE = "NONE"
 
 # EXIF tag numbers (EXIF 2.32 / TIFF 6.0).
 _TAG_ORIENTATION = 0x0112
@@ -776,7 +788,9 @@ class Recording:
         container = _open_container(path)
         try:
             stream = container.streams.video[0]
-            stream.thread_type = "AUTO"
+            stream.thread_type = VIDEO_THREAD_TYPE
+            if VIDEO_THREAD_TYPE == "NONE":
+                stream.thread_count = 1
             if key_only:
                 stream.codec_context.skip_frame = "NONKEY"
             t0: float | None = None

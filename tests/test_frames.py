@@ -695,3 +695,23 @@ def test_damaged_files_raise_typed_errors(tmp_path, valid_files, data):
             assert fr.data.ndim in (2, 3)
     except (InputFormatError, ShapeMismatchError) as err:
         assert err.path is not None
+
+
+def test_one_core_decoding_gives_the_same_frames(tmp_path, monkeypatch):
+    # Batch workers that fill the cores decode single-threaded (frames.use_one_core):
+    # H.264 decoding is exact whatever the threading (the codec is deterministic;
+    # FFmpeg threading docs), so the frames must be identical to the default's.
+    from ecl_quant import frames as frames_mod
+
+    path = tmp_path / "v.mp4"
+    rng = np.random.default_rng(34)
+    write_yuv_video(path, random_planes(rng, 48, 64, 12), options={"preset": "ultrafast"})
+    default = [fr.data.copy() for fr in open_recording(path).frames()]
+    monkeypatch.setattr(frames_mod, "READ_AHEAD", frames_mod.READ_AHEAD)
+    monkeypatch.setattr(frames_mod, "VIDEO_THREAD_TYPE", frames_mod.VIDEO_THREAD_TYPE)
+    frames_mod.use_one_core()
+    assert frames_mod.READ_AHEAD == 0 and frames_mod.VIDEO_THREAD_TYPE == "NONE"
+    single = [fr.data.copy() for fr in open_recording(path).frames()]
+    assert len(single) == len(default) == 12
+    for a, b in zip(single, default):
+        np.testing.assert_array_equal(a, b)
