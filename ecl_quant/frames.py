@@ -552,14 +552,32 @@ def _open_still(header: _StillHeader) -> tuple[_StillHeader, Any]:
     return header, buf
 
 
+def _prepare_still(header: _StillHeader) -> tuple[_StillHeader, Any]:
+    """:func:`_open_still` in the consumer's thread, except for a plain JPEG within
+    Pillow's pixel limit: Pillow's open then has nothing to warn about (its warnings come
+    from MPO headers and oversized images), so the worker opens it (``None`` handle)."""
+    from PIL import Image
+
+    if header.fmt == "JPEG" and header.width * header.height <= (Image.MAX_IMAGE_PIXELS or 0):
+        return header, None
+    return _open_still(header)
+
+
 def _decode_opened(opened: tuple[_StillHeader, Any]) -> NDArray[Any]:
     """Decode an opened still (:func:`_open_still`) to (H, W) or (H, W, 3) uint8/uint16
     RGB, orientation applied. Thread-safe: no warning filters touched."""
     import cv2
+    from PIL import Image
 
     header, handle = opened
     path = Path(header.path)
     if header.fmt in ("JPEG", "MPO"):
+        try:
+            if handle is None:  # see _prepare_still; a warning raised as an error (strict
+                # filters) means a file that changed since its header was read
+                handle = Image.open(path, formats=("JPEG",))
+        except (OSError, ValueError, SyntaxError, Warning) as err:
+            raise _jpeg_error(path, err) from err
         try:
             with handle as im:
                 if im.mode not in ("L", "RGB"):
@@ -726,7 +744,7 @@ class Recording:
     # -- stills
     def _still_frames(self) -> Iterator[Frame]:
         first: tuple[tuple[int, ...], np.dtype[Any], str] | None = None
-        stills = _read_ahead(_decode_opened, self._headers, prepare=_open_still)
+        stills = _read_ahead(_decode_opened, self._headers, prepare=_prepare_still)
         try:
             for i, (header, arr) in enumerate(stills):
                 if first is None:
