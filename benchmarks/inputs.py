@@ -90,7 +90,8 @@ class BenchConfig:
     batch_radius_px, batch_spacing_px : float
     bootstrap_draws : int
     repeats : int
-        Times each timed pair (baseline, pipeline) is run; the best of each is kept.
+        Times each timed pair (baseline, pipeline) is run back to back; a ratio is the
+        median over the pairs (the best run of each side is kept for the detail).
     batch_repeats : int
         The same for the batch pair (1 worker, 2 workers), the slowest part.
     """
@@ -133,7 +134,7 @@ CONFIGS: dict[str, BenchConfig] = {
         name="full", size=(1080, 1920), fps=30.0, short_frames=600, long_frames=3000,
         n_unique=210, n_tail=30, n_stills=300, radius_px=48.0, spacing_px=240.0,
         bitrate=16_000_000, batch_recordings=40, batch_size=(480, 640), batch_frames=60,
-        batch_radius_px=22.0, batch_spacing_px=120.0, repeats=2),
+        batch_radius_px=22.0, batch_spacing_px=120.0, repeats=3),
     # Smoke check: small frames, short recordings.
     "quick": BenchConfig(
         name="quick", size=(240, 320), fps=30.0, short_frames=100, long_frames=300,
