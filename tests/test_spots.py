@@ -369,17 +369,14 @@ def test_estimate_shift_sub_pixel(shift):
     assert (dx, dy) == pytest.approx((-ref[1], -ref[0]), abs=0.06)
 
 
-def test_drift_tracker_follows_a_simulated_tremor():
-    # The simulator's hand tremor (random walk of sub-pixel scene shifts, truth known);
-    # shifts are relative to the first frame with structure: compare after removing the
-    # median offset.
-    from ecl_quant.simulate import SimulationSpec, _plan, render_linear_frames
+def _tremor_errors(spec, tracker):
+    """Tracker shifts on the simulator's hand tremor (random walk of sub-pixel scene
+    shifts, truth known) minus the truth, over the measured frames, after removing the
+    median offset (shifts are relative to the first frame with structure); and how many
+    frames were measured."""
+    from ecl_quant.simulate import _plan, render_linear_frames
 
-    spec = SimulationSpec(size=(160, 240), n_rows=2, n_cols=3, radius_px=8.0, spacing_px=40.0,
-                          amplitudes=(0.05, 0.1, 0.15, 0.2, 0.25, 0.3), drift_px=4.0,
-                          n_frames=40, onset_s=0.3, seed=9)
     drift = _plan(spec).drift
-    tracker = DriftTracker(spec.size)
     est, ok = [], []
     for frame in render_linear_frames(spec):
         code = np.clip(np.rint(255 * np.sqrt(frame[..., 0])), 0, 255).astype(np.uint8)
@@ -387,9 +384,21 @@ def test_drift_tracker_follows_a_simulated_tremor():
         est.append((dx, dy))
         ok.append(measured)
     est, ok = np.array(est), np.array(ok)
-    assert ok.sum() >= 25
     off = est[ok] - drift[ok]
-    err = off - np.median(off, axis=0)
+    return off - np.median(off, axis=0), int(ok.sum())
+
+
+def test_drift_tracker_follows_a_simulated_tremor():
+    # The simulator's hand tremor (random walk of sub-pixel scene shifts, truth known);
+    # shifts are relative to the first frame with structure: compare after removing the
+    # median offset.
+    from ecl_quant.simulate import SimulationSpec
+
+    spec = SimulationSpec(size=(160, 240), n_rows=2, n_cols=3, radius_px=8.0, spacing_px=40.0,
+                          amplitudes=(0.05, 0.1, 0.15, 0.2, 0.25, 0.3), drift_px=4.0,
+                          n_frames=40, onset_s=0.3, seed=9)
+    err, n_ok = _tremor_errors(spec, DriftTracker(spec.size))
+    assert n_ok >= 25
     assert np.sqrt(np.mean(err**2)) < 0.3
     assert np.abs(err).max() < 1.0
 
@@ -506,24 +515,15 @@ def test_drift_tracker_odd_downscaled_size():
     # A 270 x 480 recording downscales by 2 to 135 x 240 (the size used for 1080p video):
     # simulated tremor with known truth (the project's simulator), compared after
     # removing the median offset as in the test above.
-    from ecl_quant.simulate import SimulationSpec, _plan, render_linear_frames
+    from ecl_quant.simulate import SimulationSpec
 
     spec = SimulationSpec(size=(270, 480), n_rows=2, n_cols=4, radius_px=12.0, spacing_px=70.0,
                           amplitudes=(0.05, 0.1, 0.15, 0.2, 0.25, 0.3, 0.35, 0.4), drift_px=6.0,
                           n_frames=40, onset_s=0.3, seed=5, shot_noise="gaussian")
-    drift = _plan(spec).drift
     tracker = DriftTracker(spec.size)
     assert tracker.small_shape == (135, 240)
-    est, ok = [], []
-    for frame in render_linear_frames(spec):
-        code = np.clip(np.rint(255 * np.sqrt(frame[..., 0])), 0, 255).astype(np.uint8)
-        dx, dy, _, measured = tracker.update(code)
-        est.append((dx, dy))
-        ok.append(measured)
-    est, ok = np.array(est), np.array(ok)
-    assert ok.sum() >= 25
-    off = est[ok] - drift[ok]
-    err = off - np.median(off, axis=0)
+    err, n_ok = _tremor_errors(spec, tracker)
+    assert n_ok >= 25
     assert np.sqrt(np.mean(err**2)) < 0.3
     assert np.abs(err).max() < 1.0
 
