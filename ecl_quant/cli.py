@@ -456,8 +456,10 @@ def _run_measure(args: argparse.Namespace) -> int:
     result = measure(src, spots=args.spots, dark=args.dark, settings=settings,
                      progress=not args.quiet)
     if len(result.spot_set) == 0:
+        hint = (" or --detect-frames all (only key frames were read)"
+                if settings.detect_frames == "key" else "")
         raise SpotError("no spot found; give the spots with --spots FILE (see spots.json "
-                        "of another run for the format) or try --detect log", path=src)
+                        f"of another run for the format) or try --detect log{hint}", path=src)
     written = write_measure_outputs(result, out, force=args.force)
     if args.json:
         rows = [{k: (None if isinstance(v, float) and not math.isfinite(v) else v)

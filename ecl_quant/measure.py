@@ -628,7 +628,7 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
                     key_note = "used"
                     pass1_tracker = tracker_k
             else:
-                key_note = (f"{len(key_times)} key frames, largest gap {max_gap:.3g} s "
+                key_note = (f"key frames: {len(key_times)}, largest gap {max_gap:.3g} s "
                             f"(need >= 8, <= {settings.detect_key_gap_s:g} s)")
             timings["detect_key_frames_s"] = time.perf_counter() - t1
         if found is None:
