@@ -20,6 +20,7 @@ __all__ = [
     "EclQuantWarning",
     "NoSpotsWarning",
     "TimingWarning",
+    "IncompleteRecordingWarning",
 ]
 
 
@@ -70,3 +71,7 @@ class NoSpotsWarning(EclQuantWarning):
 
 class TimingWarning(EclQuantWarning):
     """Frame times were not known and had to be assumed."""
+
+
+class IncompleteRecordingWarning(EclQuantWarning):
+    """A video holds fewer frames than its index lists: the file was cut short."""

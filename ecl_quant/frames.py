@@ -40,7 +40,12 @@ from typing import Any, Literal
 import numpy as np
 from numpy.typing import NDArray
 
-from .errors import InputFormatError, ShapeMismatchError, TimingWarning
+from .errors import (
+    IncompleteRecordingWarning,
+    InputFormatError,
+    ShapeMismatchError,
+    TimingWarning,
+)
 
 __all__ = [
     "Frame",
@@ -821,6 +826,17 @@ class Recording:
                 try:
                     fr = next(decoded)
                 except StopIteration:
+                    listed = self.n_frames
+                    if not key_only and listed and listed - index > max(2, 0.01 * listed):
+                        # A fast-start MP4 keeps its index at the front: cut short, it
+                        # still opens and simply ends early.
+                        warnings.warn(
+                            f"{path}: the video ends after {index} of the {listed} frames "
+                            "its index lists: the file was cut short (copy it again from "
+                            "the phone); only the frames present are measured",
+                            IncompleteRecordingWarning,
+                            stacklevel=2,
+                        )
                     break
                 except av.FFmpegError as err:
                     raise InputFormatError(

@@ -715,3 +715,35 @@ def test_one_core_decoding_gives_the_same_frames(tmp_path, monkeypatch):
     assert len(single) == len(default) == 12
     for a, b in zip(single, default):
         np.testing.assert_array_equal(a, b)
+
+
+def test_fast_start_mp4_cut_short_warns(tmp_path):
+    # A fast-start MP4 (index before the data; FFmpeg movflags=faststart) cut short still
+    # opens and ends early; the reader must say so instead of measuring a partial
+    # recording silently. The full file must not warn.
+    from ecl_quant.errors import IncompleteRecordingWarning
+
+    path = tmp_path / "fs.mp4"
+    rng = np.random.default_rng(35)
+    out = av.open(str(path), "w", options={"movflags": "faststart"})
+    stream = out.add_stream("libx264", rate=30)
+    stream.width, stream.height, stream.pix_fmt = 64, 48, "yuv420p"
+    for i in range(90):
+        frame = av.VideoFrame.from_ndarray(rng.integers(0, 255, (72, 64), np.uint8),
+                                           format="yuv420p")
+        frame.pts = i
+        for packet in stream.encode(frame):
+            out.mux(packet)
+    for packet in stream.encode(None):
+        out.mux(packet)
+    out.close()
+    assert sum(1 for _ in open_recording(path).frames()) == 90  # no warning (-W error)
+    cut = tmp_path / "cut.mp4"
+    data = path.read_bytes()
+    cut.write_bytes(data[: int(len(data) * 0.6)])
+    rec = open_recording(cut)
+    assert rec.n_frames == 90
+    with pytest.warns(IncompleteRecordingWarning, match=r"of the 90 frames") as info:
+        n = sum(1 for _ in rec.frames())
+    assert 0 < n < 90
+    assert f"after {n} of the 90" in str(info[0].message)
