@@ -68,7 +68,7 @@ CHANNELS = ("red", "green", "blue", "luma", "raw")
 #: Columns a manifest may have; ``path``, ``sample`` and ``role`` are required.
 MANIFEST_COLUMNS = (
     "path", "sample", "role", "concentration", "spot", "dark", "spots", "channel",
-    "transfer", "exposure_s", "notes",
+    "transfer", "exposure_s", "noise_from", "notes",
 )
 _REQUIRED = ("path", "sample", "role")
 _ALIASES = {"spots_file": "spots", "spot_file": "spots", "roi": "spots", "rois": "spots",
@@ -123,6 +123,9 @@ class ManifestRow:
         Per-row overrides (``transfer`` with a profile path made absolute).
     exposure_s : float or None
         Exposure time for frames that carry none (video), s.
+    noise_from : Path or None
+        A camera.json (``ecl-quant camera``) whose gain and dark noise replace the noise
+        model estimated from the recording.
     notes : str
     """
 
@@ -138,6 +141,7 @@ class ManifestRow:
     channel: str | None = None
     transfer: str | None = None
     exposure_s: float | None = None
+    noise_from: Path | None = None
     notes: str = ""
 
 
@@ -156,6 +160,8 @@ class RecordingSpec:
         Overrides shared by all of the recording's rows (None = batch default).
     exposure_s : float or None
         Exposure time for frames without one (video), s.
+    noise_from : Path or None
+        camera.json of the noise model (see :class:`ManifestRow`).
     lines : tuple of int
         Manifest lines that refer to this recording.
     """
@@ -169,6 +175,7 @@ class RecordingSpec:
     transfer: str | None
     lines: tuple[int, ...]
     exposure_s: float | None = None
+    noise_from: Path | None = None
 
 
 @dataclass(frozen=True)
@@ -477,8 +484,8 @@ def read_manifest(path: str | Path, *, allow_outside: bool = False,
             spots = parse_spot_list(rec.get("spot", ""))
         except ValueError as err:
             bad(str(err))
-        resolved: dict[str, Path | None] = {"dark": None, "spots": None}
-        for col in ("dark", "spots"):
+        resolved: dict[str, Path | None] = {"dark": None, "spots": None, "noise_from": None}
+        for col in ("dark", "spots", "noise_from"):
             t = rec.get(col, "")
             if not t:
                 continue
@@ -520,6 +527,11 @@ def read_manifest(path: str | Path, *, allow_outside: bool = False,
                 exposure = _parse_exposure(etext)
             except (ValueError, ZeroDivisionError):
                 bad(f"exposure_s {etext!r} is not a time in seconds (e.g. 0.0333 or 1/30)")
+        if check_exists and resolved["noise_from"] is not None and not row_problems:
+            try:
+                _noise_options(resolved["noise_from"])
+            except EclQuantError as err:
+                bad(f"noise_from: {err.reason}")
         if row_problems:
             problems.extend(row_problems)
             continue
@@ -528,6 +540,7 @@ def read_manifest(path: str | Path, *, allow_outside: bool = False,
                                 concentration=conc, spots=spots, dark=resolved["dark"],
                                 spots_file=resolved["spots"], channel=channel,
                                 transfer=transfer, exposure_s=exposure,
+                                noise_from=resolved["noise_from"],
                                 notes=rec.get("notes", "")))
 
     problems.extend(_cross_row_problems(rows))
@@ -600,7 +613,7 @@ def _group_recordings(rows: Sequence[ManifestRow], problems: list[str]) -> tuple
     specs: list[RecordingSpec] = []
     for rpath, rs in groups.items():
         lines = ", ".join(str(r.line) for r in rs)
-        for attr in ("dark", "spots_file", "channel", "transfer", "exposure_s"):
+        for attr in ("dark", "spots_file", "channel", "transfer", "exposure_s", "noise_from"):
             vals = {getattr(r, attr) for r in rs}
             if len(vals) > 1:
                 col = "spots" if attr == "spots_file" else attr
@@ -623,7 +636,7 @@ def _group_recordings(rows: Sequence[ManifestRow], problems: list[str]) -> tuple
             rec_id=_rec_id(first.path_text, used), path=rpath, path_text=first.path_text,
             dark=first.dark, spots_file=first.spots_file, channel=first.channel,
             transfer=first.transfer, lines=tuple(r.line for r in rs),
-            exposure_s=first.exposure_s))
+            exposure_s=first.exposure_s, noise_from=first.noise_from))
     return tuple(specs)
 
 
@@ -1287,6 +1300,24 @@ class _Job:
     measure_options: Mapping[str, Any]
 
 
+def _noise_options(path: Path) -> dict[str, Any]:
+    """MeasureSettings options of a camera.json noise model (read variance, gain, source)."""
+    from .radiometry import camera_noise_model
+
+    read_var, gain, source = camera_noise_model(path)
+    return {"read_var": read_var, "gain": gain, "noise_source": source}
+
+
+def _row_measure_options(base: Mapping[str, Any], rec: RecordingSpec) -> dict[str, Any]:
+    """The batch's measure options with a recording's own exposure and noise model."""
+    out = dict(base)
+    if rec.exposure_s is not None:
+        out["exposure_s"] = rec.exposure_s
+    if rec.noise_from is not None:
+        out.update(_noise_options(rec.noise_from))
+    return out
+
+
 def _profile_path(transfer: str) -> str | None:
     spec = parse_transfer(transfer)
     return spec.profile_path if spec.kind == "profile" else None
@@ -1481,8 +1512,7 @@ def run_batch(manifest: str | Path | Manifest, settings: BatchSettings, *,
                  channel=r.channel or settings.channel,
                  transfer=r.transfer or str(parse_transfer(settings.transfer)),
                  folder=str(rec_root / r.rec_id), force=settings.force, batch_id=batch_id,
-                 measure_options=(dict(settings.measure_options) if r.exposure_s is None else
-                                  {**settings.measure_options, "exposure_s": r.exposure_s}))
+                 measure_options=_row_measure_options(settings.measure_options, r))
             for r in man.recordings
         ]
         outcomes = _execute(jobs, settings, client=client, status=status)

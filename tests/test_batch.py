@@ -716,3 +716,54 @@ def test_simulate_keeps_foreign_files(tmp_path, capsys):
     assert "--force" in capsys.readouterr().err
     assert (tmp_path / "manifest.csv").read_text() == "path,sample,role\n"
     assert is_scenario_folder(REPO / "sample_frames")  # the shipped demo is remade freely
+
+
+@pytest.fixture(scope="module")
+def camera_json(tmp_path_factory):
+    # A camera.json from the project's EMVA 1288 analysis of a simulated sensor (known
+    # gain 0.45 DN/e-, read noise 2.8 e-: simulated ground truth, EMVA 1288 R4.0 Eq. 15).
+    from ecl_quant._camsim import simulate_flat_pairs
+    from ecl_quant.camera import photon_transfer, write_camera_outputs
+
+    sim = simulate_flat_pairs(gain_dn_per_e=0.45, read_noise_e=2.8, full_well_e=12000,
+                              shape=(64, 64), seed=3)
+    res = photon_transfer([f[:2] for f in sim.flats], [d[:2] for d in sim.darks],
+                          sim.exposure_s, max_code=sim.truth.max_code)
+    out = tmp_path_factory.mktemp("cam")
+    write_camera_outputs(res, out)
+    return out / "camera.json"
+
+
+def test_manifest_noise_from_column(study, camera_json, tmp_path):
+    # A row's noise_from camera.json replaces that recording's estimated noise model,
+    # exactly as measure --noise-from does (radiometry.camera_noise_model); the other
+    # recordings keep their own estimate; a damaged camera.json is a manifest problem.
+    from ecl_quant.batch import read_manifest
+    from ecl_quant.radiometry import camera_noise_model
+
+    root = tmp_path / "copy"
+    root.mkdir()
+    keep = [g for g in _GOOD if g[0] in ("s0", "s5", "s20", "u2")]
+    for g in keep:
+        shutil.copytree(study["root"] / g[0], root / g[0])
+    shutil.copy(camera_json, root / "camera.json")
+    lines = ["path,sample,role,concentration,noise_from"]
+    for p, sample, role, conc, *_ in keep:
+        lines.append(f"{p},{sample},{role},{'' if conc is None else f'{conc:g}'},"
+                     f"{'camera.json' if p == 's5' else ''}")
+    (root / "m.csv").write_text("\n".join(lines) + "\n")
+    out = tmp_path / "out"
+    assert run_batch(root / "m.csv", BatchSettings(out_dir=out, workers=1,
+                                                   progress=False)).exit_code == 0
+    read_var, gain, source = camera_noise_model(root / "camera.json")
+    given = json.loads((out / "recordings" / "s5" / "run.json").read_text())
+    noise = given["analysis"]["noise_model"]
+    assert noise["read_var"] == pytest.approx(read_var, rel=1e-12)
+    assert noise["gain_e_per_fs"] == pytest.approx(gain, rel=1e-12)
+    assert noise["source"] == source
+    other = json.loads((out / "recordings" / "s0" / "run.json").read_text())
+    assert other["analysis"]["noise_model"]["source"] != source
+    # A damaged camera.json stops the batch before any work, naming the line.
+    (root / "camera.json").write_text("{}")
+    with pytest.raises(InputFormatError, match=r"line 3.*noise_from"):
+        read_manifest(root / "m.csv")
