@@ -34,8 +34,12 @@ def atomic_write(path: str | Path, mode: str = "w", *, encoding: str | None = "u
     """
     path = Path(path)
     binary = "b" in mode
+    _remove_stale_temps(path)
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+        # The writer's pid in the name lets a later write tell a dead writer's leftover
+        # (a process killed between writing and renaming) from a live one's file.
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.{os.getpid()}.", suffix=".tmp",
+                                   dir=path.parent)
     except OSError as err:
         raise OutputError(f"cannot write here ({err.strerror}); choose another --out folder",
                           path=path.parent) from err
@@ -56,6 +60,36 @@ def atomic_write(path: str | Path, mode: str = "w", *, encoding: str | None = "u
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:  # exists but not ours (EPERM), or cannot tell: keep its file
+        return True
+    return True
+
+
+def _remove_stale_temps(path: Path) -> None:
+    """Delete ``.NAME.<pid>.*.tmp`` files beside ``path`` whose writer is gone."""
+    prefix = f".{path.name}."
+    try:
+        entries = list(os.scandir(path.parent))
+    except OSError:
+        return
+    for entry in entries:
+        name = entry.name
+        if not (name.startswith(prefix) and name.endswith(".tmp")):
+            continue
+        pid_text = name[len(prefix):].split(".", 1)[0]
+        if not pid_text.isdigit():
+            continue  # not written by this scheme: leave it
+        pid = int(pid_text)
+        if pid != os.getpid() and not _pid_alive(pid):
+            with contextlib.suppress(OSError):
+                os.unlink(entry.path)
 
 
 def _current_umask() -> int:
