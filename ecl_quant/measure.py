@@ -139,7 +139,10 @@ class MeasureSettings:
     drift : bool
         Register frames (hand-held recordings).
     drift_target_px : int
-        Longest side of the downscaled frame used for drift.
+        Longest side of the downscaled frame used for drift (480: 1080p in 4 x 4 blocks).
+        Measured on a simulated 1080p H.264 recording with no drift at all: 8 x 8 blocks
+        (256) reported shifts up to 5.3 px (rms 1.6) while the spots faded, 4 x 4 blocks
+        up to 1.3 px (rms 0.6), for ~11 % more time per frame.
     max_shift_px : float
         Shifts beyond this (from the reference) flag ``drifted``; the crop margin.
     read_var : float or None
@@ -189,7 +192,7 @@ class MeasureSettings:
     background_clip_sigma: float = 3.0
     background_estimator: Literal["mean", "median"] = "mean"
     drift: bool = True
-    drift_target_px: int = 256
+    drift_target_px: int = 480
     max_shift_px: float = 20.0
     read_var: float | None = None
     gain: float | None = None
