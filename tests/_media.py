@@ -1,6 +1,8 @@
 """Reference writers for test media: PyAV (FFmpeg) encodes given Y'CbCr planes and
 tifffile writes a minimal DNG (shared/CAMERA_NOTES.md section 5: rawpy reads it
-bit-exactly). Shared by tests/test_frames.py and tests/test_radiometry.py.
+bit-exactly). Shared by tests/test_frames.py and tests/test_radiometry.py. Also a
+camera.json of a simulated sensor (the project's EMVA 1288 analysis on known gain and
+read noise: simulated ground truth), shared by the noise-model and batch tests.
 """
 
 from __future__ import annotations
@@ -65,3 +67,17 @@ def write_dng(path, mosaic, *, black=(64, 64, 64, 64), white=1023, cfa=(0, 1, 1,
         (50721, "2i", 9, (1, 1, 0, 1, 0, 1) * 3),  # ColorMatrix1 (identity)
     ]
     tifffile.imwrite(path, mosaic, photometric=32803, extratags=extratags, subfiletype=0)
+
+
+def write_simulated_camera_json(folder, *, shape=(128, 128), seed=3):
+    """camera.json (``ecl-quant camera`` outputs) of a simulated sensor with gain 0.45 DN/e-
+    and read noise 2.8 e- in ``folder``; returns (path, simulation)."""
+    from ecl_quant._camsim import simulate_flat_pairs
+    from ecl_quant.camera import photon_transfer, write_camera_outputs
+
+    sim = simulate_flat_pairs(gain_dn_per_e=0.45, read_noise_e=2.8, full_well_e=12000,
+                              shape=shape, seed=seed)
+    res = photon_transfer([f[:2] for f in sim.flats], [d[:2] for d in sim.darks],
+                          sim.exposure_s, max_code=sim.truth.max_code)
+    write_camera_outputs(res, folder)
+    return folder / "camera.json", sim

@@ -722,16 +722,9 @@ def test_simulate_keeps_foreign_files(tmp_path, capsys):
 def camera_json(tmp_path_factory):
     # A camera.json from the project's EMVA 1288 analysis of a simulated sensor (known
     # gain 0.45 DN/e-, read noise 2.8 e-: simulated ground truth, EMVA 1288 R4.0 Eq. 15).
-    from ecl_quant._camsim import simulate_flat_pairs
-    from ecl_quant.camera import photon_transfer, write_camera_outputs
+    from _media import write_simulated_camera_json
 
-    sim = simulate_flat_pairs(gain_dn_per_e=0.45, read_noise_e=2.8, full_well_e=12000,
-                              shape=(64, 64), seed=3)
-    res = photon_transfer([f[:2] for f in sim.flats], [d[:2] for d in sim.darks],
-                          sim.exposure_s, max_code=sim.truth.max_code)
-    out = tmp_path_factory.mktemp("cam")
-    write_camera_outputs(res, out)
-    return out / "camera.json"
+    return write_simulated_camera_json(tmp_path_factory.mktemp("cam"), shape=(64, 64))[0]
 
 
 def test_manifest_noise_from_column(study, camera_json, tmp_path):

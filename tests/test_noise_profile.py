@@ -10,9 +10,8 @@ import json
 import numpy as np
 import pytest
 
-from ecl_quant.camera import photon_transfer, write_camera_outputs
+from _media import write_simulated_camera_json
 from ecl_quant.errors import InputFormatError
-from ecl_quant._camsim import simulate_flat_pairs
 from ecl_quant.measure import MeasureSettings, measure
 from ecl_quant.radiometry import camera_noise_model
 from ecl_quant.simulate import SimulationSpec, simulate_recording
@@ -20,13 +19,7 @@ from ecl_quant.simulate import SimulationSpec, simulate_recording
 
 @pytest.fixture(scope="module")
 def camera_json(tmp_path_factory):
-    sim = simulate_flat_pairs(gain_dn_per_e=0.45, read_noise_e=2.8, full_well_e=12000,
-                              shape=(128, 128), seed=3)
-    res = photon_transfer([f[:2] for f in sim.flats], [d[:2] for d in sim.darks],
-                          sim.exposure_s, max_code=sim.truth.max_code)
-    out = tmp_path_factory.mktemp("cam")
-    write_camera_outputs(res, out)
-    return out / "camera.json", sim
+    return write_simulated_camera_json(tmp_path_factory.mktemp("cam"))
 
 
 def test_camera_json_converts_to_full_scale_units(camera_json):
