@@ -753,7 +753,21 @@ def _clip_runs(keys: NDArray[Any], row_starts: NDArray[np.intp], clip_sigma: flo
     (pixels whose value has no key, e.g. replaced hot pixels).
     """
     start, length, row, col = _runs_of_sorted_rows(keys, row_starts)
-    n_rows = row_starts.size
+    head = keys[start]
+    return _clip_entries(row, col, head if key_value is None else key_value[head], length,
+                         row_starts.size, clip_sigma, extra_rows=extra_rows,
+                         extra_values=extra_values)
+
+
+def _clip_entries(row: NDArray[np.intp], col: NDArray[np.intp], values: NDArray[np.floating],
+                  counts: NDArray[np.integer], n_rows: int, clip_sigma: float, *,
+                  in_order: bool = True, extra_rows: NDArray[np.intp] | None = None,
+                  extra_values: NDArray[np.float64] | None = None
+                  ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64],
+                             NDArray[np.intp]]:
+    """:func:`_clip_compact` of (row, column, value, count) entries, plus single values
+    ``extra_values`` in rows ``extra_rows``. ``in_order``: each row's entries already
+    ascend by value (columns 0, 1, ...); otherwise, or with extras, rows are sorted."""
     per_row = np.bincount(row, minlength=n_rows)
     n_extra = 0 if extra_rows is None else int(extra_rows.size)
     extra_col = np.zeros(0, np.intp)
@@ -767,12 +781,12 @@ def _clip_runs(keys: NDArray[Any], row_starts: NDArray[np.intp], clip_sigma: flo
     width = int(per_row.max())
     cv = np.full((n_rows, width), np.inf)
     cc = np.zeros((n_rows, width), np.int64)
-    head = keys[start]
-    cv[row, col] = head if key_value is None else key_value[head]
-    cc[row, col] = length
+    cv[row, col] = values
+    cc[row, col] = counts
     if n_extra:
         cv[extra_rows, extra_col] = extra_values
         cc[extra_rows, extra_col] = 1
+    if n_extra or not in_order:
         order = np.argsort(cv, axis=1, kind="stable")
         cv = np.take_along_axis(cv, order, axis=1)
         cc = np.take_along_axis(cc, order, axis=1)
@@ -1078,22 +1092,10 @@ class SpotIntegrator:
             row = nz // span
             first = np.searchsorted(row, np.arange(n_rows))
             col = np.arange(nz.size) - first[row]
-            per_row = np.bincount(row, minlength=n_rows)
-            n_extra = 0 if extra_rows is None else extra_rows.size
-            width = int(per_row.max()) + n_extra
-            cv = np.full((n_rows, width), np.inf)
-            cc = np.zeros((n_rows, width), np.int64)
-            cv[row, col] = coded.table[code_of(nz - row * span)]
-            cc[row, col] = hist[nz]
-            if n_extra:
-                assert extra_rows is not None and extra_values is not None
-                pos = np.arange(n_extra)
-                cv[extra_rows, width - 1 - pos] = extra_values  # distinct columns past the runs
-                cc[extra_rows, width - 1 - pos] = 1
-            # Codes are in code order; the clipping wants each row in value order.
-            order = np.argsort(cv, axis=1, kind="stable")
-            return _clip_compact(np.take_along_axis(cv, order, axis=1),
-                                 np.take_along_axis(cc, order, axis=1), self.clip_sigma)
+            # Entries come in code order; _clip_entries sorts each row by value.
+            return _clip_entries(row, col, coded.table[code_of(nz - row * span)], hist[nz],
+                                 n_rows, self.clip_sigma, in_order=False,
+                                 extra_rows=extra_rows, extra_values=extra_values)
         if gone.size:
             keep = np.ones(codes.size, bool)
             keep[gone] = False

@@ -615,7 +615,7 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
         pass1_tracker: DriftTracker | None = None
         if rec.kind == "video" and settings.detect_frames != "all":
             tracker_k = new_tracker()
-            acc, hot_flat, key_shifts, key_times = detection_pass(
+            acc, hot_flat, _key_shifts, key_times = detection_pass(
                 _key_frames(rec), tracker_k, "detect (key frames)")
             # Gaps between key frames, and from the last one to the end of the video.
             end_s = float(rec.metadata.get("duration_s") or 0.0)
