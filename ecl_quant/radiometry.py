@@ -459,29 +459,21 @@ def _video_rgb(frame: Frame, b: tuple[int, int, int, int], channels: Iterable[st
         for c in wanted:
             out[c] = ey
         return out
-    sy, sx = frame.chroma_step
-    cb_plane, cr_plane = frame.chroma
-    rows = np.minimum(np.arange(r0, r1) // sy, cb_plane.shape[0] - 1)
-    cols = np.minimum(np.arange(c0, c1) // sx, cb_plane.shape[1] - 1)
-    if rows.size == 0 or cols.size == 0:
+    if r1 <= r0 or c1 <= c0:
         for c in wanted:
             out[c] = ey.copy()
         return out
-    # Take the covering chroma block once, then repeat it by index (nearest neighbour).
-    cb_blk = cb_plane[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
-    cr_blk = cr_plane[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
-    ri = (rows - rows[0])[:, None]
-    ci = (cols - cols[0])[None, :]
+    cb_plane, cr_plane = frame.chroma
+    step = tuple(frame.chroma_step)
     inv = np.float32(1.0 / c_span)
     kr, kb = _YUV_KR_KB.get(frame.yuv_matrix, _YUV_KR_KB["bt601"])
     kg = 1.0 - kr - kb
     ecb = ecr = None
+    # Chroma by nearest neighbour (_upsample_chroma), then scaled code by code.
     if "blue" in wanted or "green" in wanted:
-        ecb = (cb_blk.astype(np.float32) - np.float32(c_off)) * inv
-        ecb = ecb[ri, ci]
+        ecb = (_upsample_chroma(cb_plane, step, b).astype(np.float32) - np.float32(c_off)) * inv
     if "red" in wanted or "green" in wanted:
-        ecr = (cr_blk.astype(np.float32) - np.float32(c_off)) * inv
-        ecr = ecr[ri, ci]
+        ecr = (_upsample_chroma(cr_plane, step, b).astype(np.float32) - np.float32(c_off)) * inv
     if "red" in wanted:
         out["red"] = ey + np.float32(2.0 - 2.0 * kr) * ecr
     if "blue" in wanted:
@@ -757,8 +749,8 @@ def _table_order(key: tuple[Any, ...]) -> tuple[NDArray[np.uint16], NDArray[np.f
     return rank, uniq
 
 
-def _upsample_chroma(plane: NDArray[np.uint8], step: tuple[int, int],
-                     b: tuple[int, int, int, int]) -> NDArray[np.uint8]:
+def _upsample_chroma(plane: NDArray[Any], step: tuple[int, int],
+                     b: tuple[int, int, int, int]) -> NDArray[Any]:
     """Chroma of luma pixels ``b`` by nearest neighbour: pixel (y, x) takes
     ``plane[min(y // sy, h - 1), min(x // sx, w - 1)]``, as :func:`_video_rgb` does."""
     import cv2

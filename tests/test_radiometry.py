@@ -659,6 +659,16 @@ def test_coded_crop_values_equal_the_formulas(step, shape, channel):
     fr = Frame(index=0, time_s=0.0, data=y, max_code=255, source="m", kind="video",
                chroma=(cb, cr), chroma_step=step, yuv_matrix="bt709", yuv_range="limited")
     for region in [None, (slice(1, h - 2), slice(3, w)), (slice(h - 5, h), slice(w - 4, w))]:
+        # The chroma of pixel (y, x) is plane[min(y // sy, H - 1), min(x // sx, W - 1)]
+        # (nearest neighbour, as FFmpeg's point scaler; common practice), by plain indexing.
+        from ecl_quant.radiometry import _upsample_chroma
+
+        rr = region or (slice(0, h), slice(0, w))
+        rows = np.minimum(np.arange(h)[rr[0]] // step[0], ch - 1)
+        cols = np.minimum(np.arange(w)[rr[1]] // step[1], cw - 1)
+        r0, c0 = rr[0].start or 0, rr[1].start or 0
+        bounds = (r0, r0 + rows.size, c0, c0 + cols.size)
+        np.testing.assert_array_equal(_upsample_chroma(cr, step, bounds), cr[rows][:, cols])
         coded = code_values(fr, channel, "bt709", region=region)
         expected = linearize(channel_values(fr, channel, region=region), TransferSpec("bt709"),
                              channel=channel)
