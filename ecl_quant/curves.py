@@ -38,6 +38,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from . import _jit
 from .errors import SpotError
 from .spots import Cutout, SpotSet, annulus_cutout, region_cutout, spot_cutout
 
@@ -1186,6 +1187,19 @@ class SpotIntegrator:
             hit, which = self._entries_at(replaced - off)
         else:
             hit = which = np.zeros(0, np.intp)
+        starts = fast["starts"]
+        kernel = (_jit.spot_frame_kernel() if coded is not None and starts is not None
+                  else None)
+        compiled = None
+        if kernel is not None:
+            compiled = self._add_compiled(kernel, coded, linear_crop, sx, sy, where, hit,
+                                          which, replaced_values)
+        if compiled is not None:
+            pix, s1, s2, (med, mean, sd, cnt), noise_sums = compiled
+            self._finish_frame(pix, s1, s2, med, mean, sd, cnt, time_s=time_s,
+                               shift_px=shift_px, sx=sx, sy=sy, off=off,
+                               saturated_crop=saturated_crop, noise_sums=noise_sums)
+            return
         pix_codes = None
         if linear_crop is None:
             pix_codes = coded.codes.reshape(-1)[where]
@@ -1196,17 +1210,8 @@ class SpotIntegrator:
         else:
             pix = linear_crop.reshape(-1)[where]
         ap = pix[:n_ap]
-        starts = fast["starts"]
-
-        def group_sums(weights: NDArray[Any], count: int) -> NDArray[np.float64]:
-            # Sums over the first `count` groups (aperture: n, aperture + background: 2n).
-            if starts is None:
-                return np.bincount(fast["groups"][:weights.size], weights=weights,
-                                   minlength=count)
-            return np.add.reduceat(weights, starts[:count], dtype=np.float64)
-
-        s1 = group_sums(g.ap_w * ap, n)
-        s2 = group_sums(g.ap_w2 * ap, n)
+        s1 = self._group_sums(g.ap_w * ap, n)
+        s2 = self._group_sums(g.ap_w2 * ap, n)
         bg_pix = pix[n_ap:]
         clipped = None
         if coded is not None and starts is not None:
@@ -1230,10 +1235,38 @@ class SpotIntegrator:
                 flat = linear_crop.reshape(-1)
                 med, mean, sd, cnt = self._clipped_stats(flat[fast["bg"] + off if off
                                                               else fast["bg"]])
+        self._finish_frame(pix, s1, s2, med, mean, sd, cnt, time_s=time_s, shift_px=shift_px,
+                           sx=sx, sy=sy, off=off, saturated_crop=saturated_crop,
+                           noise_sums=None)
+
+    def _group_sums(self, weights: NDArray[Any], count: int) -> NDArray[np.float64]:
+        """Sums of ``weights`` over the first ``count`` pixel groups (aperture: n,
+        aperture + background: 2n), in float64."""
+        fast = self._flat_indices()
+        starts = fast["starts"]
+        if starts is None:
+            return np.bincount(fast["groups"][:weights.size], weights=weights,
+                               minlength=count)
+        return np.add.reduceat(weights, starts[:count], dtype=np.float64)
+
+    def _finish_frame(self, pix: NDArray[np.float32], s1: NDArray[np.float64],
+                      s2: NDArray[np.float64], med: NDArray[np.float64],
+                      mean: NDArray[np.float64], sd: NDArray[np.float64],
+                      cnt: NDArray[np.integer[Any]], *, time_s: float,
+                      shift_px: tuple[float, float], sx: int, sy: int, off: int,
+                      saturated_crop: NDArray[np.bool_] | None,
+                      noise_sums: tuple[NDArray[np.float64], NDArray[np.float64]] | None
+                      ) -> None:
+        """Store one frame's sums and background, its saturation counts and noise
+        statistics. ``pix``: the values of the gathered pixels (aperture then
+        background). ``noise_sums``: (level, squared second difference) sums per group
+        when already computed for this frame, else computed here."""
+        g = self.geometry
+        n = self.n_spots
         level = mean if self.estimator == "mean" else med
         if saturated_crop is not None and saturated_crop.any():
             sflat = saturated_crop.reshape(-1)[g.ap_idx + off] & g.ap_sat
-            sat = np.rint(group_sums(sflat, n)).astype(np.int64)
+            sat = np.rint(self._group_sums(sflat, n)).astype(np.int64)
         else:  # no saturated pixel anywhere in the crop: every count is 0
             sat = np.zeros(n, np.int64)
         r = self._rows
@@ -1252,20 +1285,67 @@ class SpotIntegrator:
             self._prev.pop(0)
         stats = np.full((2 * n, 3), np.nan)
         if len(self._prev) == 3 and len({p[1] for p in self._prev}) == 1:
-            x0, x1, x2 = (p[0] for p in self._prev)
-            # float32 differences (relative error ~1e-6 of a noise-sized difference),
-            # summed in float64.
-            d2 = x2 - x1
-            d2 -= x1
-            d2 += x0
-            d2 *= d2
-            cnt_g = fast["group_n"]
-            lev = group_sums(x1, 2 * n)
-            sq = group_sums(d2, 2 * n)
-            stats = np.column_stack([cnt_g, lev, sq])
+            if noise_sums is not None:
+                lev, sq = noise_sums
+            else:
+                x0, x1, x2 = (p[0] for p in self._prev)
+                # Differences of float32 values in float64: exact (float32 differences
+                # of nearly equal values would carry ~1e-6 relative rounding).
+                d2 = x2.astype(np.float64)
+                d2 -= x1
+                d2 -= x1
+                d2 += x0
+                d2 *= d2
+                lev = self._group_sums(x1, 2 * n)
+                sq = self._group_sums(d2, 2 * n)
+            stats = np.column_stack([self._flat_indices()["group_n"], lev, sq])
             if saturated_crop is not None:
                 stats[:n][sat > 0] = np.nan
         self._noise.append(stats)
+
+    def _add_compiled(self, kernel: Any, coded: Any, linear_crop: NDArray[np.floating] | None,
+                      sx: int, sy: int, where: NDArray[np.intp], hit: NDArray[np.intp],
+                      which: NDArray[np.intp], replaced_values: NDArray[np.floating] | None
+                      ) -> tuple[Any, ...] | None:
+        """:meth:`add`'s numbers by the compiled kernel (:mod:`ecl_quant._jit`), or None
+        where it does not apply (the numpy path then runs)."""
+        fast = self._flat_indices()
+        n_ap = self.geometry.ap_idx.size
+        table = coded.table
+        codes = coded.codes
+        if table.dtype != np.float32 or codes.dtype not in (np.uint8, np.uint16):
+            return None
+        # One compiled variant per code type, not per memory layout (a view of a
+        # plane, e.g. video luma, is copied: a fraction of the crop's cost).
+        codes = np.ascontiguousarray(codes)
+        rc = fast.get("rows_cols")
+        if rc is None:
+            rc = _jit.as_rows_cols(fast["pix"], self.geometry.shape[1])
+            fast["rows_cols"] = rc
+            fast["starts_all"] = np.append(fast["starts"], fast["pix"].size).astype(np.int64)
+        if hit.size:
+            if linear_crop is not None:
+                hit_values = linear_crop.reshape(-1)[where[hit]].astype(np.float32)
+            else:
+                assert replaced_values is not None
+                hit_values = np.asarray(replaced_values, np.float32)[which]
+        else:
+            hit_values = np.zeros(0, np.float32)
+        prev = self._prev
+        with_noise = (len(prev) >= 2 and prev[-1][1] == (sx, sy) and prev[-2][1] == (sx, sy)
+                      and prev[-1][0].size == where.size)
+        x0, x1 = ((prev[-2][0], prev[-1][0]) if with_noise
+                  else (np.zeros(0, np.float32), np.zeros(0, np.float32)))
+        vals = np.empty(where.size, np.float32)
+        s1, s2, med, mean, sd, cnt, lev, sq, ok = kernel(
+            codes, rc[0], rc[1], int(sy), int(sx), table, int(n_ap), fast["starts_all"],
+            self.geometry.ap_w, self.geometry.ap_w2, hit.astype(np.int64), hit_values,
+            x0, x1, bool(with_noise), bool(getattr(coded, "paired", False)),
+            float(self.clip_sigma), vals)
+        if not ok:
+            return None
+        return (vals, s1, s2, (med, mean, sd, cnt.astype(np.intp)),
+                (lev, sq) if with_noise else None)
 
     # -------------------------------------------------------------- results
     @property

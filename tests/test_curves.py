@@ -394,11 +394,31 @@ def _coded_frame(rng, shape, *, bits=8, pair=False):
     return coded
 
 
+@pytest.fixture(params=["compiled", "numpy"])
+def code_path(request, monkeypatch):
+    """Run a test with the compiled kernel (ecl_quant._jit) and with the numpy path."""
+    from ecl_quant import _jit
+
+    monkeypatch.setenv("ECL_QUANT_JIT", "1" if request.param == "compiled" else "0")
+    if request.param == "compiled":
+        assert _jit.kernels() is not None, "numba is a dependency: the kernel must load"
+    return request.param
+
+
 @pytest.mark.parametrize("bits,pair", [(8, False), (8, True), (16, False)])
-def test_integrator_from_codes_equals_the_float_path(bits, pair):
-    # The code histogram / radix path must give the same background statistics as the
-    # float values (numpy sort) and the plain numpy sigma clip, with a drift shift and a
-    # few replaced (hot) pixels inside the annuli.
+def test_integrator_from_codes_equals_the_float_path(bits, pair, code_path, monkeypatch):
+    # The code histogram / radix path (compiled or numpy) must give the same background
+    # statistics as the float values (numpy sort) and the plain numpy sigma clip, with a
+    # drift shift and a few replaced (hot) pixels inside the annuli.
+    used = []
+    original = SpotIntegrator._add_compiled
+
+    def spy(self, *args, **kwargs):
+        out = original(self, *args, **kwargs)
+        used.append(out is not None)
+        return out
+
+    monkeypatch.setattr(SpotIntegrator, "_add_compiled", spy)
     rng = np.random.default_rng(42 + bits + pair)
     shape = (56, 90)
     ss = SpotSet((make_spot(1, "circle", (30.0, 26.0, 6.0)), make_spot(2, "circle", (62.0, 28.0, 5.0))))
@@ -437,3 +457,41 @@ def test_integrator_from_codes_equals_the_float_path(bits, pair):
     assert c.noise_observations()[0].size == 2 * 2 * 2  # frames 3 and 6, 2 x 2 groups
     for x, y in zip(c.noise_observations(), b.noise_observations()):
         np.testing.assert_allclose(x, y, rtol=1e-12)
+    if code_path == "numpy":
+        assert not used
+    elif bits == 8:
+        assert used and all(used)  # every coded frame went through the kernel
+    else:  # 16-bit codes span too wide a range for a histogram: the numpy radix path
+        assert used and not any(used)
+
+
+def test_compiled_clipping_matches_a_plain_numpy_sigma_clip():
+    # The kernel clips rows given as distinct values with counts (a band around the
+    # median, merged distances); against numpy's median/mean/std applied literally to
+    # the expanded values (same reference as above).
+    from ecl_quant import _jit
+
+    kernels = _jit.kernels()
+    assert kernels is not None
+    rng = np.random.default_rng(43)
+    for trial in range(80):
+        rows = []
+        for _ in range(int(rng.integers(1, 6))):
+            n = int(rng.integers(3, 300))
+            if trial % 2:  # 8-bit-like: many ties
+                rows.append(np.round(rng.normal(50, 3, n)) / 255)
+            else:
+                rows.append(np.round(rng.standard_cauchy(n), 1))
+        distinct = [np.unique(v, return_counts=True) for v in rows]
+        width = np.array([d[0].size for d in distinct], np.int64)
+        cv = np.full((len(rows), width.max()), np.inf)
+        cc = np.zeros((len(rows), width.max()), np.int64)
+        for k, (v, c) in enumerate(distinct):
+            cv[k, :v.size], cc[k, :v.size] = v, c
+        med, mean, sd, cnt = kernels.clip_rows(cv, cc, width, 3.0)
+        for k, v in enumerate(rows):
+            m2, mu2, s2, c2 = _numpy_sigma_clip(v)
+            assert med[k] == pytest.approx(m2, rel=1e-12, abs=1e-15)
+            assert mean[k] == pytest.approx(mu2, rel=1e-9, abs=1e-15)
+            assert sd[k] == pytest.approx(s2, rel=1e-9, abs=1e-15)
+            assert cnt[k] == c2
