@@ -30,6 +30,8 @@ from __future__ import annotations
 import copy
 import json
 import math
+import os
+import types
 import warnings
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -1126,18 +1128,116 @@ def _interleaved_parent(plane: NDArray[np.generic]) -> tuple[NDArray[np.generic]
 _SERIAL_OUTPUT_PX = 1 << 16
 
 
+def _jit_wanted() -> bool:
+    """False when the environment variable ``ECL_QUANT_JIT`` is 0/false/no/off."""
+    return os.environ.get("ECL_QUANT_JIT", "1").strip().lower() not in ("0", "false", "no", "off")
+
+
+def _drift_kernels() -> types.SimpleNamespace | None:
+    """The tracker's compiled kernels (numba), or None: disabled (``ECL_QUANT_JIT=0``)
+    or numba not installed; then the OpenCV / numpy code runs, which the kernels
+    reproduce (the tests compare both)."""
+    return _compile_drift_kernels() if _jit_wanted() else None
+
+
+@lru_cache(maxsize=1)
+def _compile_drift_kernels() -> types.SimpleNamespace | None:
+    # numba is imported here, on first use (its import alone costs about half a second,
+    # which every command would pay at start); compiled code is cached on disk.
+    try:
+        import numba
+    except ImportError:
+        return None
+    plain = numba.njit(cache=True, nogil=True)
+
+    @plain
+    def halve_to_float(src: Any, out: Any) -> Any:
+        # 2 x 2 block means of an integer plane as float32: (a + b + c + d) * 0.25, as
+        # cv2.resize INTER_AREA computes it on the float32 copy (exact below 2 ** 22).
+        oh, ow = out.shape
+        for i in range(oh):
+            r0 = src[2 * i]
+            r1 = src[2 * i + 1]
+            for j in range(ow):
+                s = (np.float32(r0[2 * j]) + np.float32(r0[2 * j + 1])
+                     + np.float32(r1[2 * j]) + np.float32(r1[2 * j + 1]))
+                out[i, j] = s * np.float32(0.25)
+        return out
+
+    @plain
+    def box_down(src: Any, r: int, out: Any) -> None:
+        # Mean over rows i - r .. i + r (BORDER_REFLECT, r < rows): a running sum in
+        # float64 per column, times 1 / (2 r + 1), as cv2.blur (vectorised over rows).
+        h, w = src.shape
+        inv = 1.0 / (2 * r + 1)
+        acc = np.zeros(w)
+        for t in range(-r, r + 1):
+            row = src[-t - 1 if t < 0 else t]
+            for j in range(w):
+                acc[j] += row[j]
+        for i in range(h):
+            o = out[i]
+            for j in range(w):
+                o[j] = acc[j] * inv
+            i_in = i + r + 1
+            i_out = i - r
+            if i_in >= h:
+                i_in = 2 * h - i_in - 1
+            if i_out < 0:
+                i_out = -i_out - 1
+            ra = src[i_in]
+            rb = src[i_out]
+            for j in range(w):
+                acc[j] += np.float64(ra[j]) - np.float64(rb[j])
+
+    @plain
+    def box_down_twice(src: Any, r: int) -> Any:
+        tmp = np.empty_like(src)
+        out = np.empty_like(src)
+        box_down(src, r, tmp)
+        box_down(tmp, r, out)
+        return out
+
+    @plain
+    def highpass_rest(low_h: Any, med: Any, r: int) -> Any:
+        # med minus the vertical part of the double box blur of low_h (its horizontal
+        # part already applied), with the sum and sum of squares of the result.
+        h, w = med.shape
+        tmp = np.empty_like(med)
+        low = np.empty_like(med)
+        box_down(low_h, r, tmp)
+        box_down(tmp, r, low)
+        out = np.empty_like(med)
+        s1 = np.zeros(w)
+        s2 = np.zeros(w)
+        for i in range(h):
+            a = med[i]
+            b = low[i]
+            o = out[i]
+            for j in range(w):
+                v = a[j] - b[j]
+                o[j] = v
+                s1[j] += v
+                s2[j] += np.float64(v) * v
+        return out, s1.sum(), s2.sum()
+
+    return types.SimpleNamespace(halve_to_float=halve_to_float, box_down_twice=box_down_twice,
+                                 highpass_rest=highpass_rest)
+
+
 def _halve(img: NDArray[np.generic], channel: int | None = None) -> NDArray[np.generic]:
     """2 x 2 box average (cv2.resize INTER_AREA, even sizes); integer types are rounded.
 
     With ``channel``, ``img`` is (H, W, C) pixel-interleaved and only that channel is
     averaged. Large images are done in strips of whole output rows (identical result:
-    each output pixel depends only on its own 2 x 2 block), each in the calling thread;
-    a channel is copied out one strip at a time, while the strip is still in cache.
+    each output pixel depends only on its own 2 x 2 block), each in the calling thread,
+    unless OpenCV runs single-threaded anyway (cv2.setNumThreads(1)): then one call; a
+    channel is copied out one strip at a time, while the strip is still in cache.
     """
     h, w = img.shape[:2]
     oh, ow = h // 2, w // 2
     step = max(1, (_SERIAL_OUTPUT_PX - 1) // max(1, ow))
-    if oh <= step and channel is None:
+    if channel is None and (oh <= step or cv2.getNumThreads() <= 1):  # no workers to wake
         whole: NDArray[np.generic] = cv2.resize(img, (ow, oh), interpolation=cv2.INTER_AREA)
         return whole
     out = np.empty((oh, ow) + (img.shape[2:] if channel is None else ()), dtype=img.dtype)
@@ -1188,7 +1288,13 @@ def downscale_for_drift(plane: NDArray[np.generic], factor: int) -> NDArray[np.f
         src, channel = np.ascontiguousarray(src[..., channel]), None
     for _ in range(n_int):
         src = _halve(src)
-    small = np.asarray(src, dtype=np.float32)
+    kern = _drift_kernels() if n_float and src.dtype != np.float32 else None
+    if kern is not None:  # the first float step straight from the integer plane
+        small = kern.halve_to_float(src, np.empty((src.shape[0] // 2, src.shape[1] // 2),
+                                                  dtype=np.float32))
+        n_float -= 1
+    else:
+        small = np.asarray(src, dtype=np.float32)
     for _ in range(n_float):
         small = _halve(small)
     if rest > 1:
@@ -1382,11 +1488,34 @@ def _prepare_for_drift(small: NDArray[np.float32], highpass_px: float) -> NDArra
     The blur is two passes of a box filter of width ``2 * highpass_px + 1`` (close to a
     Gaussian, at a cost independent of the width).
     """
+    return _highpass_moments(small, highpass_px)[0]
+
+
+def _highpass_moments(small: NDArray[np.float32], highpass_px: float
+                      ) -> tuple[NDArray[np.float32], float, float]:
+    """:func:`_prepare_for_drift` of ``small``, and the mean and SD of the result.
+
+    The OpenCV code: cv2.medianBlur, cv2.blur twice (BORDER_REFLECT), cv2.meanStdDev.
+    With the compiled kernels the box blurs are separated (a box blur is a vertical
+    times a horizontal one, and both passes of each commute with the other's): the
+    horizontal passes run as vertical ones on the transposed median (cv2.transpose),
+    the vertical ones with a running sum along the columns, the last fused with the
+    subtraction and the sums of the moments; same values within float32 rounding.
+    """
     med = cv2.medianBlur(small, 3) if min(small.shape) >= 3 else small
     k = 2 * int(round(highpass_px)) + 1
+    kern = _drift_kernels()
+    if kern is not None and k // 2 < min(med.shape) and med.dtype == np.float32:
+        r = k // 2
+        low_h = cv2.transpose(kern.box_down_twice(cv2.transpose(med), r))
+        out, s1, s2 = kern.highpass_rest(low_h, med, r)
+        mean = s1 / out.size
+        return out, mean, math.sqrt(max(s2 / out.size - mean * mean, 0.0))
     low = cv2.blur(cv2.blur(med, (k, k), borderType=cv2.BORDER_REFLECT),
                    (k, k), borderType=cv2.BORDER_REFLECT)
-    return (med - low).astype(np.float32, copy=False)
+    out = (med - low).astype(np.float32, copy=False)
+    m, sd = cv2.meanStdDev(out)
+    return out, float(m[0, 0]), float(sd[0, 0])
 
 
 class DriftTracker:
@@ -1480,9 +1609,9 @@ class DriftTracker:
     def _prepared(self, plane: NDArray[np.generic]) -> tuple[_Prepared, float]:
         """This frame downscaled, filtered and made ready for phase correlation (its
         spectrum is kept if it becomes the reference), and its contrast."""
-        small = _prepare_for_drift(downscale_for_drift(plane, self.factor), self.highpass_px)
-        mean, sd = cv2.meanStdDev(small)
-        return _Prepared(small, self._window, 1.0, mean=float(mean[0, 0])), float(sd[0, 0])
+        small, mean, sd = _highpass_moments(downscale_for_drift(plane, self.factor),
+                                            self.highpass_px)
+        return _Prepared(small, self._window, 1.0, mean=mean), sd
 
     def resume(self) -> DriftTracker:
         """A tracker for another pass over the same recording, from its first frame.

@@ -556,3 +556,91 @@ def test_resumed_tracker_keeps_the_first_pass_origin():
     err = np.array([np.subtract(second[i][:2], drift[i]) - offset for i in ok2])
     assert np.sqrt(np.mean(err**2)) < 0.3
     assert np.abs(err).max() < 1.0
+
+
+# ------------------------------------------------------------------ drift kernels
+
+
+def _kernels_or_skip():
+    pytest.importorskip("numba")
+    from ecl_quant.spots import _drift_kernels
+
+    k = _drift_kernels()
+    if k is None:
+        pytest.skip("compiled kernels disabled (ECL_QUANT_JIT)")
+    return k
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16])
+def test_drift_kernel_halving_is_opencv_area_resize(dtype):
+    # Reference: cv2.resize INTER_AREA of the float32 copy (2 x 2 means, exact for
+    # integer codes): bit-identical, also on a row-padded view of a wider buffer.
+    k = _kernels_or_skip()
+    rng = np.random.default_rng(7)
+    top = 255 if dtype == np.uint8 else 65535
+    buf = rng.integers(0, top + 1, (90, 200)).astype(dtype)
+    for img in (buf, buf[:, :160], buf[:88, :6]):
+        h, w = img.shape[0] // 2, img.shape[1] // 2
+        got = k.halve_to_float(img, np.empty((h, w), np.float32))
+        ref = cv2.resize(img.astype(np.float32), (w, h), interpolation=cv2.INTER_AREA)
+        np.testing.assert_array_equal(got, ref)
+
+
+def test_drift_kernel_box_is_opencv_blur():
+    # Reference: cv2.blur with a (1, k) kernel (vertical box, BORDER_REFLECT), twice;
+    # the kernel's running sum in float64 agrees to float32 rounding.
+    k = _kernels_or_skip()
+    img = 100.0 * _texture((135, 240), 1.5, 8) + 20.0
+    for r in (1, 6, 20):
+        ref = img
+        for _ in range(2):
+            ref = cv2.blur(ref, (1, 2 * r + 1), borderType=cv2.BORDER_REFLECT)
+        np.testing.assert_allclose(k.box_down_twice(img, r), ref, rtol=0, atol=2e-5)
+
+
+@pytest.mark.parametrize("shape, highpass_px", [((270, 480), 6.0), ((135, 240), 6.0),
+                                                 ((40, 9), 3.0), ((12, 30), 8.0),
+                                                 ((12, 30), 14.0)])
+def test_highpass_kernels_match_the_opencv_code(monkeypatch, shape, highpass_px):
+    # Reference: the OpenCV path (cv2.medianBlur, cv2.blur twice, cv2.meanStdDev), run
+    # with ECL_QUANT_JIT=0. On (12, 30) a 29-px box is taller than the image (OpenCV
+    # reflects more than once): the OpenCV path serves both there.
+    from ecl_quant.spots import _highpass_moments
+
+    _kernels_or_skip()
+    img = 200.0 * _texture(shape, 1.0, 3) + np.linspace(0.0, 50.0, shape[1], dtype=np.float32)
+    img0 = img.copy()
+    got, mean, sd = _highpass_moments(img, highpass_px)
+    monkeypatch.setenv("ECL_QUANT_JIT", "0")
+    ref, ref_mean, ref_sd = _highpass_moments(img, highpass_px)
+    np.testing.assert_array_equal(img, img0)
+    m, s = cv2.meanStdDev(ref)
+    assert (ref_mean, ref_sd) == (float(m[0, 0]), float(s[0, 0]))
+    assert got.dtype == np.float32 and got.shape == img.shape
+    np.testing.assert_allclose(got, ref, rtol=0, atol=5e-5)
+    assert mean == pytest.approx(ref_mean, abs=1e-6)
+    assert sd == pytest.approx(ref_sd, rel=1e-6)
+
+
+def test_drift_tracker_same_shifts_with_and_without_kernels(monkeypatch):
+    # The compiled path against the OpenCV / numpy one on the simulator's tremor at the
+    # downscaled size of 1080p video (270 x 480 by 2): same shifts and flags.
+    from ecl_quant.simulate import SimulationSpec, render_linear_frames
+
+    _kernels_or_skip()
+    spec = SimulationSpec(size=(270, 480), n_rows=2, n_cols=4, radius_px=12.0, spacing_px=70.0,
+                          amplitudes=(0.05, 0.1, 0.15, 0.2, 0.25, 0.3, 0.35, 0.4), drift_px=6.0,
+                          n_frames=30, onset_s=0.3, seed=5, shot_noise="gaussian")
+    codes = [np.clip(np.rint(255 * np.sqrt(f[..., 0])), 0, 255).astype(np.uint8)
+             for f in render_linear_frames(spec)]
+    runs = []
+    for jit in ("1", "0"):
+        monkeypatch.setenv("ECL_QUANT_JIT", jit)
+        tracker = DriftTracker(spec.size, target_px=120)
+        assert tracker.factor == 4
+        runs.append(np.array([tracker.update(c) for c in codes]))
+    fast, plain = runs
+    assert plain[:, 3].sum() >= 15
+    np.testing.assert_array_equal(fast[:, 3], plain[:, 3])
+    np.testing.assert_allclose(fast[:, :2], plain[:, :2], rtol=0, atol=1e-3)
+    np.testing.assert_allclose(fast[:, 2], plain[:, 2], rtol=0, atol=1e-5)
