@@ -27,7 +27,7 @@ from typing import Any, Callable
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["enabled", "spot_frame_kernel"]
+__all__ = ["enabled", "kernels"]
 
 _lock = threading.Lock()
 _kernels: types.SimpleNamespace | None = None
@@ -37,13 +37,6 @@ _failed = False
 def enabled() -> bool:
     """True unless ``ECL_QUANT_JIT`` is 0/false/no/off."""
     return os.environ.get("ECL_QUANT_JIT", "1").strip().lower() not in ("0", "false", "no", "off")
-
-
-def spot_frame_kernel() -> Callable[..., Any] | None:
-    """The compiled per-frame kernel of the spot integrator, or None (disabled, or
-    numba not installed)."""
-    k = kernels()
-    return None if k is None else k.spot_frame  # type: ignore[no-any-return]
 
 
 def kernels() -> types.SimpleNamespace | None:
@@ -316,28 +309,74 @@ def _compile() -> types.SimpleNamespace:
         return cv, cc, width, True
 
     @plain
-    def spot_frame(codes: Any, rows: Any, cols: Any, dy: int, dx: int, table: Any,
-                   n_ap: int, starts: Any, ap_w: Any, ap_w2: Any,
-                   hit: Any, hit_values: Any, x0: Any, x1: Any, with_noise: bool,
-                   paired: bool, clip_sigma: float, vals: Any) -> Any:
+    def gather_planes(luma: Any, chroma: Any, r0: int, c0: int, chroma_rows: Any,
+                      chroma_cols: Any, paired: bool, rows: Any, cols: Any, dy: int,
+                      dx: int, table: Any, hit: Any, hit_values: Any, vals: Any,
+                      keys: Any) -> Any:
+        # As gather, with the codes read from the decoded planes (see
+        # radiometry.PlaneSource): Y' or Y' * 256 + the nearest chroma sample.
+        if paired:
+            for i in range(rows.size):
+                r = r0 + rows[i] + dy
+                c = c0 + cols[i] + dx
+                k = (np.int32(luma[r, c]) << 8) | np.int32(chroma[chroma_rows[r], chroma_cols[c]])
+                keys[i] = k
+                vals[i] = table[k]
+        else:
+            for i in range(rows.size):
+                k = np.int32(luma[r0 + rows[i] + dy, c0 + cols[i] + dx])
+                keys[i] = k
+                vals[i] = table[k]
+        gone = np.zeros(rows.size, np.bool_)
+        for j in range(hit.size):
+            vals[hit[j]] = hit_values[j]
+            gone[hit[j]] = True
+        return gone
+
+    @plain
+    def frame_stats(keys: Any, vals: Any, gone: Any, n_hit: int, starts: Any, ap_w: Any,
+                    ap_w2: Any, x0: Any, x1: Any, with_noise: bool, paired: bool,
+                    clip_sigma: float, table: Any) -> Any:
         n_groups = starts.size - 1
         n = n_groups // 2
-        keys = np.empty(rows.size, np.int32)
-        gone = gather(codes, rows, cols, dy, dx, table, hit, hit_values, vals, keys)
         s1, s2 = aperture_sums(vals, ap_w, ap_w2, starts, n)
         if with_noise:
             lev, sq = noise_sums(vals, x0, x1, starts)
         else:
             lev = np.full(n_groups, np.nan)
             sq = np.full(n_groups, np.nan)
-        cv, cc, width, ok = annulus_rows(keys, vals, gone, hit.size, starts, paired, table)
+        cv, cc, width, ok = annulus_rows(keys, vals, gone, n_hit, starts, paired, table)
         if not ok:
             return (s1, s2, np.zeros(n), np.zeros(n), np.zeros(n), np.zeros(n, np.int64),
                     lev, sq, False)
         med, mean, sd, cnt = clip_rows(cv, cc, width, clip_sigma)
         return s1, s2, med, mean, sd, cnt, lev, sq, True
 
-    return types.SimpleNamespace(spot_frame=spot_frame, gather=gather,
+    @plain
+    def spot_frame(codes: Any, rows: Any, cols: Any, dy: int, dx: int, table: Any,
+                   starts: Any, ap_w: Any, ap_w2: Any, hit: Any, hit_values: Any, x0: Any,
+                   x1: Any, with_noise: bool, paired: bool, clip_sigma: float,
+                   vals: Any) -> Any:
+        keys = np.empty(rows.size, np.int32)
+        gone = gather(codes, rows, cols, dy, dx, table, hit, hit_values, vals, keys)
+        return frame_stats(keys, vals, gone, hit.size, starts, ap_w, ap_w2, x0, x1,
+                           with_noise, paired, clip_sigma, table)
+
+    @plain
+    def spot_frame_planes(luma: Any, chroma: Any, r0: int, c0: int, chroma_rows: Any,
+                          chroma_cols: Any, rows: Any, cols: Any, dy: int, dx: int,
+                          table: Any, starts: Any, ap_w: Any, ap_w2: Any, hit: Any,
+                          hit_values: Any, x0: Any, x1: Any, with_noise: bool,
+                          paired: bool, clip_sigma: float, vals: Any) -> Any:
+        keys = np.empty(rows.size, np.int32)
+        gone = gather_planes(luma, chroma, r0, c0, chroma_rows, chroma_cols, paired, rows,
+                             cols, dy, dx, table, hit, hit_values, vals, keys)
+        return frame_stats(keys, vals, gone, hit.size, starts, ap_w, ap_w2, x0, x1,
+                           with_noise, paired, clip_sigma, table)
+
+    return types.SimpleNamespace(spot_frame=spot_frame,
+                                 spot_frame_planes=spot_frame_planes, gather=gather,
+                                 gather_planes=gather_planes,
                                  annulus_rows=annulus_rows, clip_rows=clip_rows,
                                  aperture_sums=aperture_sums, noise_sums=noise_sums)
 

@@ -1165,8 +1165,10 @@ class SpotIntegrator:
             Their values; required with ``replaced`` when ``linear_crop`` is None.
         """
         g = self.geometry
-        if coded is not None and coded.codes.shape != g.shape:
-            raise SpotError(f"coded crop is {coded.codes.shape} but the integrator "
+        coded_shape = None if coded is None else tuple(getattr(coded, "shape", None)
+                                                       or coded.codes.shape)
+        if coded is not None and coded_shape != g.shape:
+            raise SpotError(f"coded crop is {coded_shape} but the integrator "
                             f"expects {g.shape}")
         if linear_crop is None:
             if coded is None:
@@ -1188,11 +1190,10 @@ class SpotIntegrator:
         else:
             hit = which = np.zeros(0, np.intp)
         starts = fast["starts"]
-        kernel = (_jit.spot_frame_kernel() if coded is not None and starts is not None
-                  else None)
+        kernels = _jit.kernels() if coded is not None and starts is not None else None
         compiled = None
-        if kernel is not None:
-            compiled = self._add_compiled(kernel, coded, linear_crop, sx, sy, where, hit,
+        if kernels is not None:
+            compiled = self._add_compiled(kernels, coded, linear_crop, sx, sy, where, hit,
                                           which, replaced_values)
         if compiled is not None:
             pix, s1, s2, (med, mean, sd, cnt), noise_sums = compiled
@@ -1303,21 +1304,21 @@ class SpotIntegrator:
                 stats[:n][sat > 0] = np.nan
         self._noise.append(stats)
 
-    def _add_compiled(self, kernel: Any, coded: Any, linear_crop: NDArray[np.floating] | None,
+    def _add_compiled(self, kernels: Any, coded: Any, linear_crop: NDArray[np.floating] | None,
                       sx: int, sy: int, where: NDArray[np.intp], hit: NDArray[np.intp],
                       which: NDArray[np.intp], replaced_values: NDArray[np.floating] | None
                       ) -> tuple[Any, ...] | None:
-        """:meth:`add`'s numbers by the compiled kernel (:mod:`ecl_quant._jit`), or None
-        where it does not apply (the numpy path then runs)."""
+        """:meth:`add`'s numbers by the compiled kernels (:mod:`ecl_quant._jit`), or None
+        where they do not apply (the numpy path then runs). Codes come from the decoded
+        planes when ``coded`` has a ``source`` (only the pixels used are read), else
+        from its crop."""
         fast = self._flat_indices()
-        n_ap = self.geometry.ap_idx.size
         table = coded.table
-        codes = coded.codes
-        if table.dtype != np.float32 or codes.dtype not in (np.uint8, np.uint16):
+        if table.dtype != np.float32:
             return None
-        # One compiled variant per code type, not per memory layout (a view of a
-        # plane, e.g. video luma, is copied: a fraction of the crop's cost).
-        codes = np.ascontiguousarray(codes)
+        source = getattr(coded, "source", None)
+        if source is None and coded.codes.dtype not in (np.uint8, np.uint16):
+            return None
         rc = fast.get("rows_cols")
         if rc is None:
             rc = _jit.as_rows_cols(fast["pix"], self.geometry.shape[1])
@@ -1337,11 +1338,22 @@ class SpotIntegrator:
         x0, x1 = ((prev[-2][0], prev[-1][0]) if with_noise
                   else (np.zeros(0, np.float32), np.zeros(0, np.float32)))
         vals = np.empty(where.size, np.float32)
-        s1, s2, med, mean, sd, cnt, lev, sq, ok = kernel(
-            codes, rc[0], rc[1], int(sy), int(sx), table, int(n_ap), fast["starts_all"],
-            self.geometry.ap_w, self.geometry.ap_w2, hit.astype(np.int64), hit_values,
-            x0, x1, bool(with_noise), bool(getattr(coded, "paired", False)),
-            float(self.clip_sigma), vals)
+        g = self.geometry
+        common = (table, fast["starts_all"], g.ap_w, g.ap_w2, hit.astype(np.int64),
+                  hit_values, x0, x1, bool(with_noise), bool(getattr(coded, "paired", False)),
+                  float(self.clip_sigma), vals)
+        if source is not None:
+            chroma = source.luma if source.chroma is None else source.chroma
+            out = kernels.spot_frame_planes(
+                source.luma, chroma, int(source.bounds[0]), int(source.bounds[2]),
+                source.chroma_rows, source.chroma_cols, rc[0], rc[1], int(sy), int(sx),
+                *common)
+        else:
+            # One compiled variant per code type, not per memory layout (a view of a
+            # plane is copied: a fraction of the crop's cost).
+            out = kernels.spot_frame(np.ascontiguousarray(coded.codes), rc[0], rc[1],
+                                     int(sy), int(sx), *common)
+        s1, s2, med, mean, sd, cnt, lev, sq, ok = out
         if not ok:
             return None
         return (vals, s1, s2, (med, mean, sd, cnt.astype(np.intp)),

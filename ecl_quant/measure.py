@@ -721,7 +721,7 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
             # every pixel's value its own): the integrator then reads only the pixels it
             # uses and sorts codes, not floats. The whole crop is converted only for the
             # first frame (hot pixels) and the frames of the overlay projection.
-            coded = (code_values(frame, channel, spec, region=region)
+            coded = (code_values(frame, channel, spec, region=region, lazy=True)
                      if master is None else None)
             project = crop_acc is not None and index % proj_every == 0
             lin = None
@@ -741,7 +741,8 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
                     fill = flat[hot_fill[0]]
                 else:  # the same numbers from the codes of the (non-hot) neighbours
                     assert coded is not None
-                    nb = np.take(coded.table, coded.codes.reshape(-1)[hot_fill[1]])
+                    nb = np.take(coded.table, coded.codes_at(hot_fill[1].reshape(-1))
+                                 ).reshape(hot_fill[1].shape)
                     fill = (nb * hot_fill[2]).sum(axis=1)
             sat = saturation_mask(frame, channel, region=region, level=settings.saturation_level)
             if hot_fill[0].size:

@@ -708,6 +708,51 @@ def _code_table(kind: str, channel: str, dtype: str, matrix: str, yuv_range: str
 
 
 @dataclass(frozen=True, eq=False)
+class PlaneSource:
+    """Where the codes of a video crop come from, for readers that gather only the
+    pixels they need (:mod:`ecl_quant._jit`) instead of building the whole crop.
+
+    Pixel (y, x) of the crop (frame pixel ``(r0 + y, c0 + x)``) has the code
+    ``luma[r, c]`` or, paired, ``luma[r, c] * 256 + chroma[chroma_rows[r],
+    chroma_cols[c]]``: the nearest-neighbour chroma of :func:`_upsample_chroma`.
+    """
+
+    luma: NDArray[np.uint8]
+    chroma: NDArray[np.uint8] | None
+    bounds: tuple[int, int, int, int]  # (r0, r1, c0, c1) in frame pixels
+    step: tuple[int, int]
+    chroma_rows: NDArray[np.int32]  # for every frame row
+    chroma_cols: NDArray[np.int32]  # for every frame column
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        r0, r1, c0, c1 = self.bounds
+        return r1 - r0, c1 - c0
+
+    def crop_codes(self) -> NDArray[Any]:
+        """Codes of the whole crop (as :func:`code_values` builds them)."""
+        r0, r1, c0, c1 = self.bounds
+        y = self.luma[r0:r1, c0:c1]
+        if self.chroma is None:
+            return y
+        idx = y.astype(np.uint16)
+        idx <<= 8
+        idx |= _upsample_chroma(self.chroma, self.step, self.bounds)
+        return idx
+
+    def codes_at(self, flat: NDArray[np.integer[Any]]) -> NDArray[Any]:
+        """Codes of the crop pixels at flat crop indices."""
+        r0, _r1, c0, c1 = self.bounds
+        rows, cols = np.divmod(np.asarray(flat, np.intp), c1 - c0)
+        rows += r0
+        cols += c0
+        y = self.luma[rows, cols]
+        if self.chroma is None:
+            return y
+        code = y.astype(np.uint16) << 8
+        return code | self.chroma[self.chroma_rows[rows], self.chroma_cols[cols]]
+
+
 class CodedCrop:
     """A crop as integer codes plus the table of their linear values.
 
@@ -719,23 +764,64 @@ class CodedCrop:
     Attributes
     ----------
     codes : (h, w) ndarray of uint8 or uint16
-        Index into ``table`` of every pixel (video red/blue: Y' * 256 + C).
+        Index into ``table`` of every pixel (video red/blue: Y' * 256 + C). With a
+        ``source``, made from it on first use.
     table : (n,) ndarray of float32
     rank : (n,) ndarray of uint16
     rank_value : (m,) ndarray of float64
     paired : bool
         The codes are Y' * 256 + C (video red/blue), not one sample value.
+    source : PlaneSource or None
+        The decoded planes the codes come from (video), for gathering readers.
     """
 
-    codes: NDArray[np.unsignedinteger[Any]]
-    table: NDArray[np.float32]
-    rank: NDArray[np.uint16]
-    rank_value: NDArray[np.float64]
-    paired: bool = False
+    __slots__ = ("_codes", "table", "rank", "rank_value", "paired", "source")
+
+    def __init__(self, codes: NDArray[np.unsignedinteger[Any]] | None,
+                 table: NDArray[np.float32], rank: NDArray[np.uint16],
+                 rank_value: NDArray[np.float64], paired: bool = False, *,
+                 source: PlaneSource | None = None) -> None:
+        if codes is None and source is None:
+            raise ValueError("CodedCrop needs codes or a source")
+        self._codes = codes
+        self.table = table
+        self.rank = rank
+        self.rank_value = rank_value
+        self.paired = paired
+        self.source = source
+
+    @property
+    def codes(self) -> NDArray[np.unsignedinteger[Any]]:
+        if self._codes is None:
+            assert self.source is not None
+            self._codes = self.source.crop_codes()
+        return self._codes
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """(h, w) of the crop."""
+        if self._codes is None and self.source is not None:
+            return self.source.shape
+        h, w = self.codes.shape
+        return int(h), int(w)
+
+    def codes_at(self, flat: NDArray[np.integer[Any]]) -> NDArray[Any]:
+        """Codes at flat crop indices (from the planes when the crop is not built)."""
+        if self._codes is None and self.source is not None:
+            return self.source.codes_at(flat)
+        return self.codes.reshape(-1)[flat]
 
     def values(self) -> NDArray[np.float32]:
         """Linear value of every pixel (a new float32 array)."""
         return np.take(self.table, self.codes)
+
+
+@functools.lru_cache(maxsize=16)
+def _chroma_lookup(n: int, step: int, n_chroma: int) -> NDArray[np.int32]:
+    """Chroma row (or column) of each of ``n`` luma rows: ``min(i // step, n_chroma - 1)``."""
+    out = np.minimum(np.arange(n) // step, n_chroma - 1).astype(np.int32)
+    out.flags.writeable = False
+    return out
 
 
 @functools.lru_cache(maxsize=32)
@@ -775,19 +861,27 @@ def _upsample_chroma(plane: NDArray[Any], step: tuple[int, int],
 
 
 def code_values(frame: Frame, channel: str, transfer: TransferSpec | str = "auto", *,
-                region: tuple[slice, slice] | None = None) -> CodedCrop | None:
+                region: tuple[slice, slice] | None = None, lazy: bool = False
+                ) -> CodedCrop | None:
     """The crop as codes into a table of linear values, or None where no table applies.
 
     Tables exist for 8-bit video (``luma``, ``red``, ``blue``; red and blue from the
     (Y', Cr) or (Y', Cb) code pair) and 8/16-bit stills with the sRGB, BT.709, gamma
     and linear transfers; ``values()`` gives exactly :func:`linear_values`.
+
+    ``lazy``: for video, do not build the crop's codes; the result carries the decoded
+    planes (``source``, a :class:`PlaneSource`) and builds them only when ``codes`` is
+    read, so a reader that gathers a few pixels pays for those only.
     """
     spec = resolve_transfer(transfer, frame)
-    found = _table_codes(frame, channel, spec, region)
+    found = _table_codes(frame, channel, spec, region, lazy=lazy)
     if found is None:
         return None
     key, codes = found
     rank, rank_value = _table_order(key)
+    if isinstance(codes, PlaneSource):
+        return CodedCrop(None, _code_table(*key), rank, rank_value, paired=bool(key[5]),
+                         source=codes)
     return CodedCrop(codes, _code_table(*key), rank, rank_value, paired=bool(key[5]))
 
 
@@ -802,9 +896,10 @@ def _table_values(frame: Frame, channel: str, spec: TransferSpec,
 
 
 def _table_codes(frame: Frame, channel: str, spec: TransferSpec,
-                 region: tuple[slice, slice] | None
-                 ) -> tuple[tuple[Any, ...], NDArray[Any]] | None:
-    """The ``_code_table`` key and the code of every pixel of the crop, or None."""
+                 region: tuple[slice, slice] | None, *, lazy: bool = False
+                 ) -> tuple[tuple[Any, ...], NDArray[Any] | PlaneSource] | None:
+    """The ``_code_table`` key and the code of every pixel of the crop, or None.
+    ``lazy`` (video): a :class:`PlaneSource` instead of the codes."""
     if spec.kind not in _TABLE_TRANSFERS or channel not in CHANNELS:
         return None
     r0, r1, c0, c1 = _bounds(region, frame.shape)
@@ -826,21 +921,24 @@ def _table_codes(frame: Frame, channel: str, spec: TransferSpec,
         return ("still", "red", data.dtype.str, "", "", False, spec.kind, spec.gamma), crop
     if frame.kind != "video" or data.dtype != np.uint8 or frame.bit_depth != 8:
         return None
-    y = data[r0:r1, c0:c1]
     if channel == "luma" or (frame.chroma is None and channel in _RGB_INDEX):
-        return ("video", "luma", "|u1", frame.yuv_matrix, frame.yuv_range, False,
-                spec.kind, spec.gamma), y
-    if channel not in ("red", "blue") or frame.chroma is None:
+        plane = None
+    elif channel not in ("red", "blue") or frame.chroma is None:
         return None
-    plane = frame.chroma[1] if channel == "red" else frame.chroma[0]
-    if plane.dtype != np.uint8:
-        return None
+    else:
+        plane = frame.chroma[1] if channel == "red" else frame.chroma[0]
+        if plane.dtype != np.uint8:
+            return None
     # Chroma by nearest neighbour, as in _video_rgb: pixel (y, x) uses (y // sy, x // sx).
-    idx = y.astype(np.uint16)
-    idx <<= 8
-    idx |= _upsample_chroma(plane, tuple(frame.chroma_step), (r0, r1, c0, c1))
-    return ("video", channel, "|u1", frame.yuv_matrix, frame.yuv_range, True,
-            spec.kind, spec.gamma), idx
+    sy, sx = (int(v) for v in frame.chroma_step)
+    h, w = data.shape
+    source = PlaneSource(
+        luma=data, chroma=plane, bounds=(r0, r1, c0, c1), step=(sy, sx),
+        chroma_rows=_chroma_lookup(h, sy, h if plane is None else plane.shape[0]),
+        chroma_cols=_chroma_lookup(w, sx, w if plane is None else plane.shape[1]))
+    key = ("video", "luma" if plane is None else channel, "|u1", frame.yuv_matrix,
+           frame.yuv_range, plane is not None, spec.kind, spec.gamma)
+    return key, (source if lazy else source.crop_codes())
 
 
 def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] | None = None,

@@ -465,6 +465,55 @@ def test_integrator_from_codes_equals_the_float_path(bits, pair, code_path, monk
         assert used and not any(used)
 
 
+def test_integrator_reads_video_codes_from_the_planes(code_path):
+    # A video frame's codes gathered straight from its Y' and Cr planes (lazy coded
+    # crop: the crop is never built) must give the statistics of the float path on
+    # linearize(channel_values) (BT.709 formulas, CAMERA_NOTES 1.4), with drift shifts
+    # and replaced (hot) pixels; the numpy sigma clip is the reference of the latter.
+    from ecl_quant.frames import Frame
+    from ecl_quant.radiometry import channel_values, code_values, linearize
+    from ecl_quant.transfer import TransferSpec
+
+    rng = np.random.default_rng(44)
+    h, w = 57, 91
+    ss = SpotSet((make_spot(1, "circle", (30.0, 26.0, 6.0)), make_spot(2, "circle", (62.0, 28.0, 5.0))))
+    a = SpotIntegrator(ss, (h, w), pad_px=3)
+    b = SpotIntegrator(ss, (h, w), pad_px=3)
+    g = a.geometry
+    hot = np.sort(np.concatenate([g.bg_flat[[3, 40]], g.ap_idx[[10]]])).astype(np.intp)
+    yy, xx = np.mgrid[0:h, 0:w]
+    glow = np.exp(-((xx - 30.0) ** 2 + (yy - 26.0) ** 2) / 60.0)
+    for i, shift in enumerate([(0, 0), (0, 0), (0, 0), (1, -2), (1, -2), (1, -2)]):
+        # Dim background, glowing spot: the annuli span a few codes of Y' and Cr (the
+        # code histogram applies; see test above for the wide-range fallback).
+        y = np.clip(np.round(60 + 40 * glow + rng.normal(0, 1, (h, w))), 0, 255).astype(np.uint8)
+        cb = rng.integers(126, 131, (29, 46), np.uint8)
+        cr = np.clip(np.round(128 + 10 * glow[::2, ::2] + rng.normal(0, 0.7, (29, 46))), 0,
+                     255).astype(np.uint8)
+        fr = Frame(index=i, time_s=float(i), data=y, max_code=255, source="m", kind="video",
+                   chroma=(cb, cr), chroma_step=(2, 2), yuv_matrix="bt709",
+                   yuv_range="limited")
+        lin = linearize(channel_values(fr, "red", region=a.region), TransferSpec("bt709"),
+                        channel="red")
+        lin.reshape(-1)[hot] = lin.reshape(-1)[hot - 1] * np.float32(1.0007)
+        coded = code_values(fr, "red", "bt709", region=a.region, lazy=True)
+        a.add(None, time_s=float(i), shift_px=shift, coded=coded, replaced=hot,
+              replaced_values=lin.reshape(-1)[hot])
+        assert coded._codes is None or code_path == "numpy"  # the kernel built no crop
+        b.add(lin, time_s=float(i), shift_px=shift)
+        off = shift[1] * g.shape[1] + shift[0]
+        for k in range(2):
+            ref = _numpy_sigma_clip(lin.reshape(-1)[g.bg_flat[g.bg_spot == k] + off])
+            assert a.raw_arrays()["bg"][-1, k] == pytest.approx(ref[1], rel=1e-9)
+            assert a.raw_arrays()["bg_n"][-1, k] == ref[3]
+    ra, rb = a.raw_arrays(), b.raw_arrays()
+    for key in ("sum", "sum_w2", "bg", "bg_sd", "bg_n"):
+        np.testing.assert_allclose(ra[key], rb[key], rtol=1e-12, atol=0)
+    assert a.noise_observations()[0].size == 2 * 2 * 2
+    for x, y_ in zip(a.noise_observations(), b.noise_observations()):
+        np.testing.assert_allclose(x, y_, rtol=1e-12)
+
+
 def test_compiled_clipping_matches_a_plain_numpy_sigma_clip():
     # The kernel clips rows given as distinct values with counts (a band around the
     # median, merged distances); against numpy's median/mean/std applied literally to

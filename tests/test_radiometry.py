@@ -677,6 +677,53 @@ def test_coded_crop_values_equal_the_formulas(step, shape, channel):
         v = coded.table.astype(np.float64)
         np.testing.assert_array_equal(coded.rank_value[coded.rank], v)
         assert np.all(np.diff(coded.rank_value) > 0)
+        # Lazy: the same codes from the planes, whole or at a few pixels.
+        lazy = code_values(fr, channel, "bt709", region=region, lazy=True)
+        assert lazy.source is not None and lazy.shape == coded.codes.shape
+        flat = rng.integers(0, coded.codes.size, 40)
+        np.testing.assert_array_equal(lazy.codes_at(flat), coded.codes.reshape(-1)[flat])
+        np.testing.assert_array_equal(lazy.codes, coded.codes)
+        np.testing.assert_array_equal(lazy.values(), expected)
+
+
+@pytest.mark.parametrize("rotation", [0, 1, 3])
+@pytest.mark.parametrize("channel", ["luma", "red"])
+def test_compiled_plane_gather_equals_the_formulas(rotation, channel):
+    # The kernel reads codes straight from the decoded planes (nearest chroma by lookup
+    # tables); its values must be linearize(channel_values) at those pixels (the BT
+    # formulas, CAMERA_NOTES 1.4), also for rotated (negative-stride) planes and crops
+    # reaching the last, unevenly shared chroma row and column.
+    from ecl_quant import _jit
+    from ecl_quant.radiometry import code_values
+
+    kernels = _jit.kernels()
+    assert kernels is not None
+    rng = np.random.default_rng(53 + rotation)
+    y = rng.integers(0, 256, (37, 51), np.uint8)
+    cb = rng.integers(0, 256, (19, 26), np.uint8)
+    cr = rng.integers(0, 256, (19, 26), np.uint8)
+    y, cb, cr = (np.rot90(a, rotation) for a in (y, cb, cr))
+    fr = Frame(index=0, time_s=0.0, data=y, max_code=255, source="m", kind="video",
+               chroma=(cb, cr), chroma_step=(2, 2), yuv_matrix="bt709", yuv_range="limited")
+    h, w = y.shape
+    region = (slice(3, h), slice(1, w))
+    lazy = code_values(fr, channel, "bt709", region=region, lazy=True)
+    src = lazy.source
+    expected = linearize(channel_values(fr, channel, region=region), TransferSpec("bt709"),
+                         channel=channel)
+    ch, cw = expected.shape
+    dy, dx = 0, 0
+    rows = rng.integers(0, ch, 500).astype(np.int32)
+    cols = rng.integers(0, cw, 500).astype(np.int32)
+    vals = np.empty(rows.size, np.float32)
+    keys = np.empty(rows.size, np.int32)
+    chroma = src.luma if src.chroma is None else src.chroma
+    gone = kernels.gather_planes(src.luma, chroma, src.bounds[0], src.bounds[2],
+                                 src.chroma_rows, src.chroma_cols, lazy.paired, rows, cols,
+                                 dy, dx, lazy.table, np.zeros(0, np.int64),
+                                 np.zeros(0, np.float32), vals, keys)
+    assert not gone.any()
+    np.testing.assert_array_equal(vals, expected[rows, cols])
 
 
 def test_coded_crop_of_stills_and_none_where_no_table():
