@@ -1130,7 +1130,8 @@ _SERIAL_OUTPUT_PX = 1 << 16
 
 def _jit_wanted() -> bool:
     """False when the environment variable ``ECL_QUANT_JIT`` is 0/false/no/off."""
-    return os.environ.get("ECL_QUANT_JIT", "1").strip().lower() not in ("0", "false", "no", "off")
+    value = os.environ.get("ECL_QUANT_JIT")
+    return value is None or value.strip().lower() not in ("0", "false", "no", "off")
 
 
 def _drift_kernels() -> types.SimpleNamespace | None:
@@ -1162,6 +1163,30 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
                 s = (np.float32(r0[2 * j]) + np.float32(r0[2 * j + 1])
                      + np.float32(r1[2 * j]) + np.float32(r1[2 * j + 1]))
                 out[i, j] = s * np.float32(0.25)
+        return out
+
+    @plain
+    def quarter_to_float(src: Any, out: Any, v0: Any, v1: Any, t: Any) -> Any:
+        # Two 2 x 2 steps of an integer plane in one pass: the first rounded half up to
+        # a whole code ((a + b + c + d + 2) >> 2, cv2.resize INTER_AREA on integers),
+        # the second exact in float32 (as halve_to_float). v0, v1 (4 ow) and t (2 ow)
+        # are scratch rows of an integer type wide enough for sums of four codes.
+        oh, ow = out.shape
+        w = 4 * ow
+        for i in range(oh):
+            r0 = src[4 * i]
+            r1 = src[4 * i + 1]
+            r2 = src[4 * i + 2]
+            r3 = src[4 * i + 3]
+            for j in range(w):
+                v0[j] = r0[j] + r1[j]
+                v1[j] = r2[j] + r3[j]
+            for j in range(2 * ow):
+                t[j] = (((v0[2 * j] + v0[2 * j + 1] + 2) >> 2)
+                        + ((v1[2 * j] + v1[2 * j + 1] + 2) >> 2))
+            o = out[i]
+            for m in range(ow):
+                o[m] = np.float32(t[2 * m] + t[2 * m + 1]) * np.float32(0.25)
         return out
 
     @plain
@@ -1199,15 +1224,16 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
         return out
 
     @plain
-    def highpass_rest(low_h: Any, med: Any, r: int) -> Any:
+    def highpass_rest(low_h: Any, med: Any, r: int, window: Any) -> Any:
         # med minus the vertical part of the double box blur of low_h (its horizontal
-        # part already applied), with the sum and sum of squares of the result.
+        # part already applied), with the sum and sum of squares of the result; with a
+        # window (not empty), (result - float32(mean)) * window instead, in float32.
         h, w = med.shape
         tmp = np.empty_like(med)
         low = np.empty_like(med)
         box_down(low_h, r, tmp)
         box_down(tmp, r, low)
-        out = np.empty_like(med)
+        out = tmp  # no longer needed
         s1 = np.zeros(w)
         s2 = np.zeros(w)
         for i in range(h):
@@ -1219,10 +1245,59 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
                 o[j] = v
                 s1[j] += v
                 s2[j] += np.float64(v) * v
-        return out, s1.sum(), s2.sum()
+        t1 = s1.sum()
+        t2 = s2.sum()
+        if window.size:
+            m = np.float32(t1 / out.size)
+            for i in range(h):
+                o = out[i]
+                wr = window[i]
+                for j in range(w):
+                    o[j] = (o[j] - m) * wr[j]
+        return out, t1, t2
 
-    return types.SimpleNamespace(halve_to_float=halve_to_float, box_down_twice=box_down_twice,
-                                 highpass_rest=highpass_rest)
+    @numba.njit(cache=True, nogil=True, fastmath={"reassoc", "nsz", "contract"})
+    def spectral_lags(cross: Any, weight: Any, ix: int, iy: int, cos_x: Any, sin_x: Any,
+                      cos_y: Any, sin_y: Any) -> Any:
+        # The sums of _spectral_lags: cross is the float32 view (re, im interleaved) of
+        # the complex64 cross spectrum; the tables hold cos / sin(2 pi n / N). Sums
+        # along a row in float32 (vectorised, in any order), over rows in float64.
+        h, wc = weight.shape
+        rows = cos_y.size
+        cols = cos_x.size
+        cx = np.empty((3, wc), np.float32)
+        sx = np.empty((3, wc), np.float32)
+        for d in range(3):
+            step = (ix + d - 1) % cols
+            for k in range(wc):
+                t = (k * step) % cols
+                cx[d, k] = cos_x[t]
+                sx[d, k] = sin_x[t]
+        re = np.empty(wc, np.float32)
+        im = np.empty(wc, np.float32)
+        out = np.zeros((3, 3))
+        for ky in range(h):
+            row = cross[ky]
+            wr = weight[ky]
+            for k in range(wc):
+                re[k] = row[2 * k] * wr[k]
+                im[k] = row[2 * k + 1] * wr[k]
+            for d in range(3):
+                rr = np.float32(0.0)
+                ii = np.float32(0.0)
+                c = cx[d]
+                s = sx[d]
+                for k in range(wc):
+                    rr += re[k] * c[k] - im[k] * s[k]
+                    ii += re[k] * s[k] + im[k] * c[k]
+                for e in range(3):
+                    t = (ky * ((iy + e - 1) % rows)) % rows
+                    out[e, d] += np.float64(rr) * cos_y[t] - np.float64(ii) * sin_y[t]
+        return out / (rows * cols)
+
+    return types.SimpleNamespace(halve_to_float=halve_to_float, quarter_to_float=quarter_to_float,
+                                 box_down_twice=box_down_twice, highpass_rest=highpass_rest,
+                                 spectral_lags=spectral_lags)
 
 
 def _halve(img: NDArray[np.generic], channel: int | None = None) -> NDArray[np.generic]:
@@ -1286,10 +1361,16 @@ def downscale_for_drift(plane: NDArray[np.generic], factor: int) -> NDArray[np.f
         n_int -= 1
     elif channel is not None:
         src, channel = np.ascontiguousarray(src[..., channel]), None
-    for _ in range(n_int):
-        src = _halve(src)
     kern = _drift_kernels() if n_float and src.dtype != np.float32 else None
-    if kern is not None:  # the first float step straight from the integer plane
+    for _ in range(n_int - (1 if kern is not None else 0)):
+        src = _halve(src)
+    if kern is not None and n_int:  # the last rounded and the first float step, one pass
+        oh, ow = src.shape[0] // 4, src.shape[1] // 4
+        acc = np.uint16 if src.dtype == np.uint8 else np.uint32
+        small = kern.quarter_to_float(src, np.empty((oh, ow), np.float32), np.empty(4 * ow, acc),
+                                      np.empty(4 * ow, acc), np.empty(2 * ow, acc))
+        n_float -= 1
+    elif kern is not None:  # the first float step straight from the integer plane
         small = kern.halve_to_float(src, np.empty((src.shape[0] // 2, src.shape[1] // 2),
                                                   dtype=np.float32))
         n_float -= 1
@@ -1341,6 +1422,15 @@ def _refine_blurred(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, d
     values = _lag_products(a, b, m, [(ix + i - 1, iy + j - 1) for j, i in where])
     for (j, i), v in zip(where, values):
         c[j, i] = v
+    return _parabola_peak(c, dx, dy)
+
+
+def _parabola_peak(c: NDArray[np.float64], dx: float, dy: float) -> tuple[float, float]:
+    """The sub-pixel peak from correlations ``c[j, i]`` at lags (ix + i - 1, iy + j - 1)
+    around the whole-pixel lag (ix, iy) nearest (dx, dy): the vertex of a parabola
+    through the three lags along each axis (the corners are not used); (dx, dy) on an
+    axis without a maximum within one pixel."""
+    ix, iy = int(round(dx)), int(round(dy))
 
     def vertex(left: float, mid: float, right: float) -> float | None:
         den = left - 2.0 * mid + right
@@ -1354,6 +1444,66 @@ def _refine_blurred(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, d
     return (dx if ox is None else ix + ox), (dy if oy is None else iy + oy)
 
 
+@lru_cache(maxsize=8)
+def _lag_weights(shape: tuple[int, int], blur: float) -> NDArray[np.float32]:
+    """Weights of a real DFT of size ``shape`` (``scipy.fft.rfft2`` layout) that turn
+    sums over a cross spectrum into the cross-correlation of the two images, each
+    blurred by the Gaussian cv2.GaussianBlur uses for ``blur`` px (float32 data: 8
+    sigma + 1 taps): the squared DFT of that kernel, times 2 for the columns that stand
+    for their complex-conjugate twins of the full spectrum."""
+    rows, cols = shape
+    if blur > 0:
+        ksize = int(np.rint(blur * 8 + 1)) | 1
+        g = cv2.getGaussianKernel(ksize, blur, cv2.CV_32F).ravel().astype(np.float64)
+        r = ksize // 2
+
+        def response(n: int, k: NDArray[np.float64]) -> NDArray[np.float64]:
+            t = np.arange(1, r + 1)
+            return g[r] + 2.0 * np.cos(2.0 * np.pi * np.outer(k, t) / n) @ g[r + 1:]
+
+        gy = response(rows, np.arange(rows, dtype=np.float64))
+        gx = response(cols, np.arange(cols // 2 + 1, dtype=np.float64))
+    else:
+        gy, gx = np.ones(rows), np.ones(cols // 2 + 1)
+    twin = np.full(cols // 2 + 1, 2.0)
+    twin[0] = 1.0
+    if cols % 2 == 0:
+        twin[-1] = 1.0
+    return np.outer(gy**2, twin * gx**2).astype(np.float32)
+
+
+def _spectral_lags(cross: NDArray[np.complex64], shape: tuple[int, int], blur: float,
+                   ix: int, iy: int) -> NDArray[np.float64]:
+    """Cross-correlation of the blurred images at the 3 x 3 whole-pixel lags around
+    (ix, iy), ``c[j, i]`` at (ix + i - 1, iy + j - 1), from their cross spectrum
+    ``cross`` (image spectrum times the reference's conjugate, DFT size ``shape``): the
+    inverse DFT at nine points only (two small matrix products)."""
+    rows, cols = shape
+    weight = _lag_weights(shape, blur)
+    kern = _drift_kernels()
+    if kern is not None and cross.dtype == np.complex64 and cross.flags.c_contiguous:
+        cos_x, sin_x, cos_y, sin_y = _dft_tables(shape)
+        lags: NDArray[np.float64] = kern.spectral_lags(cross.view(np.float32), weight, ix, iy,
+                                                       cos_x, sin_x, cos_y, sin_y)
+        return lags
+    d = np.arange(-1, 2)
+    vx = np.exp((2j * np.pi / cols) * np.outer(np.arange(cols // 2 + 1), ix + d))
+    vy = np.exp((2j * np.pi / rows) * np.outer(iy + d, np.arange(rows)))
+    # einsum without optimize: numpy's own loops (a BLAS product of this size may wake
+    # the BLAS threads, which then spin on cores the decoder needs)
+    c = np.einsum("jk,ki->ji", vy, np.einsum("kl,li->ki", cross * weight, vx)).real
+    return c / (rows * cols)  # type: ignore[no-any-return]
+
+
+@lru_cache(maxsize=8)
+def _dft_tables(shape: tuple[int, int]) -> tuple[NDArray[np.float64], ...]:
+    """cos and sin of 2 pi n / N for n < N, N the columns and the rows of ``shape``."""
+    rows, cols = shape
+    ax = 2.0 * np.pi * np.arange(cols) / cols
+    ay = 2.0 * np.pi * np.arange(rows) / rows
+    return np.cos(ax), np.sin(ax), np.cos(ay), np.sin(ay)
+
+
 def _refine_shift(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, dy: float,
                   blur: float) -> tuple[float, float]:
     """Sub-pixel peak of the cross-correlation at the 3 x 3 integer lags around (dx, dy)."""
@@ -1365,13 +1515,41 @@ def _refine_shift(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, dy:
 
 _FLT_EPS = float(np.finfo(np.float32).eps)
 
+try:  # scipy.fft's own transform functions, without its argument checks and dispatch
+    from scipy.fft._pocketfft import pypocketfft as _pocketfft  # (40 us a call, per frame)
+except ImportError:  # pragma: no cover - another scipy layout: the public functions
+    _pocketfft = None
+
+
+def _rfft2(a: NDArray[np.float32], shape: tuple[int, int]) -> NDArray[np.complex64]:
+    """scipy.fft.rfft2(a, s=shape) of a C-contiguous float32 image."""
+    if _pocketfft is not None and a.shape == shape and a.dtype == np.float32:
+        try:
+            out: NDArray[np.complex64] = _pocketfft.r2c(a, (0, 1), True, 0, None, 1)
+            return out
+        except TypeError:  # pragma: no cover - a changed signature
+            pass
+    return sp_fft.rfft2(a, s=shape)  # type: ignore[no-any-return]
+
+
+def _irfft2(q: NDArray[np.complex64], shape: tuple[int, int]) -> NDArray[np.float32]:
+    """scipy.fft.irfft2(q, s=shape): the inverse of :func:`_rfft2`, divided by its size."""
+    if _pocketfft is not None and q.dtype == np.complex64 and q.shape[1] == shape[1] // 2 + 1:
+        try:
+            out: NDArray[np.float32] = _pocketfft.c2r(q, (0, 1), shape[1], False, 2, None, 1)
+            return out
+        except TypeError:  # pragma: no cover - a changed signature
+            pass
+    return sp_fft.irfft2(q, s=shape)  # type: ignore[no-any-return]
+
 
 class _Prepared:
     """One image made ready for phase correlation, computed once per frame (and kept
     with the reference until it is replaced): mean removed and windowed (float32), its
-    zero-padded real DFT, and the Gaussian-blurred copy the refinement correlates."""
+    zero-padded real DFT, and the blur of the sub-pixel refinement (None: no
+    refinement) with the Gaussian-blurred copy, made when first asked for."""
 
-    __slots__ = ("windowed", "spectrum", "blurred", "_conj")
+    __slots__ = ("windowed", "spectrum", "blur", "_blurred", "_conj")
 
     def __init__(self, image: NDArray[np.floating], window: NDArray[np.float32] | None,
                  blur: float | None, *, mean: float | None = None) -> None:
@@ -1380,13 +1558,31 @@ class _Prepared:
                         dtype=np.float32)
         if window is not None:
             a *= window
+        self._finish(a, blur)
+
+    @classmethod
+    def of_windowed(cls, windowed: NDArray[np.float32], blur: float | None) -> _Prepared:
+        """From an image already mean-removed and windowed (float32, not copied)."""
+        self = cls.__new__(cls)
+        self._finish(windowed, blur)
+        return self
+
+    def _finish(self, a: NDArray[np.float32], blur: float | None) -> None:
         self.windowed = a
         h, w = a.shape
         shape = (cv2.getOptimalDFTSize(h), cv2.getOptimalDFTSize(w))
-        self.spectrum: NDArray[np.complex64] = sp_fft.rfft2(a, s=shape)
-        self.blurred = (None if blur is None else
-                        cv2.GaussianBlur(a, (0, 0), blur) if blur > 0 else a)
+        self.spectrum: NDArray[np.complex64] = _rfft2(a, shape)
+        self.blur = None if blur is None else float(blur)
+        self._blurred: NDArray[np.float32] | None = None
         self._conj: NDArray[np.complex64] | None = None
+
+    @property
+    def blurred(self) -> NDArray[np.float32] | None:
+        """The windowed image blurred by ``blur`` px (cv2.GaussianBlur), or None."""
+        if self._blurred is None and self.blur is not None:
+            self._blurred = (cv2.GaussianBlur(self.windowed, (0, 0), self.blur)
+                             if self.blur > 0 else self.windowed)
+        return self._blurred
 
     def conj_spectrum(self) -> NDArray[np.complex64]:
         """Complex conjugate of the spectrum (kept: a reference is used many times)."""
@@ -1417,13 +1613,18 @@ def _phase_correlate(ref_conj: NDArray[np.complexfloating],
         Displacement of the image relative to the reference.
     response : float
     """
-    p = img_spectrum * ref_conj  # peak at +shift (cv2 conjugates the other spectrum)
-    mag = np.abs(p)
+    # peak at +shift (cv2 conjugates the other spectrum)
+    return _phase_peak(img_spectrum * ref_conj, shape)
+
+
+def _phase_peak(cross: NDArray[np.complexfloating], shape: tuple[int, int]
+                ) -> tuple[float, float, float]:
+    """:func:`_phase_correlate` from the cross spectrum (not modified)."""
+    mag = np.abs(cross)
     den = mag * mag
     den += _FLT_EPS
     np.divide(mag, den, out=mag)
-    p *= mag
-    c = sp_fft.irfft2(p, s=shape)  # includes cv2's division of the response by M * N
+    c = _irfft2(cross * mag, shape)  # includes cv2's division of the response by M * N
     rows, cols = shape
     py, px = divmod(int(np.argmax(c)), cols)
     d = np.arange(-2, 3)
@@ -1438,14 +1639,24 @@ def _phase_correlate(ref_conj: NDArray[np.complexfloating],
 
 
 def _shift_between(ref: _Prepared, img: _Prepared) -> tuple[float, float, float]:
-    """Phase correlation of two prepared images, sub-pixel refined when both carry
-    blurred copies (see :func:`estimate_shift`)."""
+    """Phase correlation of two prepared images, sub-pixel refined when both have the
+    same refinement blur (see :func:`estimate_shift`).
+
+    The refinement's nine correlations of the blurred images come from the cross
+    spectrum the phase correlation uses (:func:`_spectral_lags`), which is the same sum
+    as :func:`_refine_blurred` over the blurred copies but for what lies within a few
+    pixels of the border, where the window is near zero, so no blurred copy is made.
+    """
     h, w = ref.windowed.shape
     shape = (cv2.getOptimalDFTSize(h), cv2.getOptimalDFTSize(w))
-    dx, dy, resp = _phase_correlate(ref.conj_spectrum(), img.spectrum, shape)
-    if (ref.blurred is not None and img.blurred is not None
+    cross = img.spectrum * ref.conj_spectrum()
+    dx, dy, resp = _phase_peak(cross, shape)
+    if (ref.blur is not None and ref.blur == img.blur
             and math.isfinite(dx) and math.isfinite(dy)):
-        dx, dy = _refine_blurred(ref.blurred, img.blurred, dx, dy)
+        ix, iy = int(round(dx)), int(round(dy))
+        m = 2 + max(abs(ix), abs(iy))  # as _refine_blurred
+        if h - 2 * m >= 4 and w - 2 * m >= 4:
+            dx, dy = _parabola_peak(_spectral_lags(cross, shape, ref.blur, ix, iy), dx, dy)
     return float(dx), float(dy), float(resp)
 
 
@@ -1491,9 +1702,13 @@ def _prepare_for_drift(small: NDArray[np.float32], highpass_px: float) -> NDArra
     return _highpass_moments(small, highpass_px)[0]
 
 
-def _highpass_moments(small: NDArray[np.float32], highpass_px: float
+def _highpass_moments(small: NDArray[np.float32], highpass_px: float, *,
+                      window: NDArray[np.float32] | None = None
                       ) -> tuple[NDArray[np.float32], float, float]:
     """:func:`_prepare_for_drift` of ``small``, and the mean and SD of the result.
+
+    With ``window``, the first result is instead the high-passed image minus its mean
+    (rounded to float32) times the window, in float32, as :class:`_Prepared` makes it.
 
     The OpenCV code: cv2.medianBlur, cv2.blur twice (BORDER_REFLECT), cv2.meanStdDev.
     With the compiled kernels the box blurs are separated (a box blur is a vertical
@@ -1508,14 +1723,21 @@ def _highpass_moments(small: NDArray[np.float32], highpass_px: float
     if kern is not None and k // 2 < min(med.shape) and med.dtype == np.float32:
         r = k // 2
         low_h = cv2.transpose(kern.box_down_twice(cv2.transpose(med), r))
-        out, s1, s2 = kern.highpass_rest(low_h, med, r)
+        win = _NO_WINDOW if window is None else np.asarray(window, dtype=np.float32)
+        out, s1, s2 = kern.highpass_rest(low_h, med, r, win)
         mean = s1 / out.size
         return out, mean, math.sqrt(max(s2 / out.size - mean * mean, 0.0))
     low = cv2.blur(cv2.blur(med, (k, k), borderType=cv2.BORDER_REFLECT),
                    (k, k), borderType=cv2.BORDER_REFLECT)
     out = (med - low).astype(np.float32, copy=False)
     m, sd = cv2.meanStdDev(out)
+    if window is not None:
+        out = np.subtract(out, np.float32(m[0, 0]), dtype=np.float32)
+        out *= window
     return out, float(m[0, 0]), float(sd[0, 0])
+
+
+_NO_WINDOW = np.zeros((0, 0), np.float32)
 
 
 class DriftTracker:
@@ -1609,9 +1831,9 @@ class DriftTracker:
     def _prepared(self, plane: NDArray[np.generic]) -> tuple[_Prepared, float]:
         """This frame downscaled, filtered and made ready for phase correlation (its
         spectrum is kept if it becomes the reference), and its contrast."""
-        small, mean, sd = _highpass_moments(downscale_for_drift(plane, self.factor),
-                                            self.highpass_px)
-        return _Prepared(small, self._window, 1.0, mean=mean), sd
+        windowed, _, sd = _highpass_moments(downscale_for_drift(plane, self.factor),
+                                            self.highpass_px, window=self._window)
+        return _Prepared.of_windowed(windowed, 1.0), sd
 
     def resume(self) -> DriftTracker:
         """A tracker for another pass over the same recording, from its first frame.
