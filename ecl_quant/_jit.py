@@ -339,6 +339,12 @@ def _compile() -> types.SimpleNamespace:
                     clip_sigma: float, table: Any) -> Any:
         n_groups = starts.size - 1
         n = n_groups // 2
+        # Highest first byte (Y' for video) among the aperture entries that keep their
+        # code: a saturation test can be skipped when it is below every saturated code.
+        y_max = -1
+        for i in range(starts[n]):
+            if not gone[i]:
+                y_max = max(y_max, (keys[i] >> 8) if paired else keys[i])
         s1, s2 = aperture_sums(vals, ap_w, ap_w2, starts, n)
         if with_noise:
             lev, sq = noise_sums(vals, x0, x1, starts)
@@ -348,9 +354,9 @@ def _compile() -> types.SimpleNamespace:
         cv, cc, width, ok = annulus_rows(keys, vals, gone, n_hit, starts, paired, table)
         if not ok:
             return (s1, s2, np.zeros(n), np.zeros(n), np.zeros(n), np.zeros(n, np.int64),
-                    lev, sq, False)
+                    lev, sq, y_max, False)
         med, mean, sd, cnt = clip_rows(cv, cc, width, clip_sigma)
-        return s1, s2, med, mean, sd, cnt, lev, sq, True
+        return s1, s2, med, mean, sd, cnt, lev, sq, y_max, True
 
     @plain
     def spot_frame(codes: Any, rows: Any, cols: Any, dy: int, dx: int, table: Any,

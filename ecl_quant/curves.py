@@ -31,7 +31,7 @@ Stetson, P. B. (1987), PASP 99, 191 (sky annulus, robust sky).
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass
 from typing import Any
 
@@ -1135,9 +1135,10 @@ class SpotIntegrator:
 
     def add(self, linear_crop: NDArray[np.floating] | None, *, time_s: float,
             shift_px: tuple[float, float] = (0.0, 0.0),
-            saturated_crop: NDArray[np.bool_] | None = None, coded: Any = None,
-            replaced: NDArray[np.intp] | None = None,
-            replaced_values: NDArray[np.floating] | None = None) -> None:
+            saturated_crop: NDArray[np.bool_] | Callable[[], NDArray[np.bool_]] | None = None,
+            coded: Any = None, replaced: NDArray[np.intp] | None = None,
+            replaced_values: NDArray[np.floating] | None = None,
+            saturation_floor: int | None = None) -> None:
         """Integrate one frame.
 
         Parameters
@@ -1150,8 +1151,10 @@ class SpotIntegrator:
         shift_px : (float, float)
             Content displacement (dx, dy) of this frame relative to the spot coordinates;
             rounded to whole pixels and limited to the margins (:meth:`clip_shift`).
-        saturated_crop : (h, w) ndarray of bool, optional
-            Saturated pixels of the same crop.
+        saturated_crop : (h, w) ndarray of bool, or a function returning one, optional
+            Saturated pixels of the same crop. A function is called only when needed:
+            with ``saturation_floor``, not when every aperture pixel's code (its Y' for
+            video) is below the floor.
         coded : CodedCrop, optional
             The same crop as codes (:func:`ecl_quant.radiometry.code_values`): anything
             with ``codes`` (h, w), ``table`` (the value of each code), ``rank`` (a rank
@@ -1163,6 +1166,9 @@ class SpotIntegrator:
             Flat crop indices whose value is not their code's (hot pixels filled in).
         replaced_values : (k,) ndarray of float, optional
             Their values; required with ``replaced`` when ``linear_crop`` is None.
+        saturation_floor : int, optional
+            A code (video: Y', :func:`ecl_quant.radiometry.saturation_floor`) below which
+            no pixel is saturated; replaced pixels are not counted as saturated.
         """
         g = self.geometry
         coded_shape = None if coded is None else tuple(getattr(coded, "shape", None)
@@ -1196,7 +1202,10 @@ class SpotIntegrator:
             compiled = self._add_compiled(kernels, coded, linear_crop, sx, sy, where, hit,
                                           which, replaced_values)
         if compiled is not None:
-            pix, s1, s2, (med, mean, sd, cnt), noise_sums = compiled
+            pix, s1, s2, (med, mean, sd, cnt), noise_sums, y_max = compiled
+            if (callable(saturated_crop) and saturation_floor is not None
+                    and y_max < saturation_floor):
+                saturated_crop = None  # no aperture pixel can be saturated
             self._finish_frame(pix, s1, s2, med, mean, sd, cnt, time_s=time_s,
                                shift_px=shift_px, sx=sx, sy=sy, off=off,
                                saturated_crop=saturated_crop, noise_sums=noise_sums)
@@ -1240,6 +1249,10 @@ class SpotIntegrator:
                            sx=sx, sy=sy, off=off, saturated_crop=saturated_crop,
                            noise_sums=None)
 
+    @staticmethod
+    def _saturation(saturated_crop: Any) -> NDArray[np.bool_] | None:
+        return saturated_crop() if callable(saturated_crop) else saturated_crop
+
     def _group_sums(self, weights: NDArray[Any], count: int) -> NDArray[np.float64]:
         """Sums of ``weights`` over the first ``count`` pixel groups (aperture: n,
         aperture + background: 2n), in float64."""
@@ -1265,6 +1278,7 @@ class SpotIntegrator:
         g = self.geometry
         n = self.n_spots
         level = mean if self.estimator == "mean" else med
+        saturated_crop = self._saturation(saturated_crop)
         if saturated_crop is not None and saturated_crop.any():
             sflat = saturated_crop.reshape(-1)[g.ap_idx + off] & g.ap_sat
             sat = np.rint(self._group_sums(sflat, n)).astype(np.int64)
@@ -1353,11 +1367,11 @@ class SpotIntegrator:
             # plane is copied: a fraction of the crop's cost).
             out = kernels.spot_frame(np.ascontiguousarray(coded.codes), rc[0], rc[1],
                                      int(sy), int(sx), *common)
-        s1, s2, med, mean, sd, cnt, lev, sq, ok = out
+        s1, s2, med, mean, sd, cnt, lev, sq, y_max, ok = out
         if not ok:
             return None
         return (vals, s1, s2, (med, mean, sd, cnt.astype(np.intp)),
-                (lev, sq) if with_noise else None)
+                (lev, sq) if with_noise else None, int(y_max))
 
     # -------------------------------------------------------------- results
     @property

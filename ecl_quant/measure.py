@@ -491,6 +491,7 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
         hot_pixel_map,
         linear_values,
         load_dark,
+        saturation_floor,
         saturation_mask,
         transfer_choice,
     )
@@ -744,13 +745,24 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
                     nb = np.take(coded.table, coded.codes_at(hot_fill[1].reshape(-1))
                                  ).reshape(hot_fill[1].shape)
                     fill = (nb * hot_fill[2]).sum(axis=1)
-            sat = saturation_mask(frame, channel, region=region, level=settings.saturation_level)
-            if hot_fill[0].size:
-                # A hot pixel sits at the top code in every frame whatever the light: it was
-                # replaced above, so it must not mark the spot as saturated either.
-                sat.flat[hot_fill[0]] = False
-            integ.add(lin, time_s=frame.time_s, shift_px=(sh[0], sh[1]), saturated_crop=sat,
-                      coded=coded, replaced=hot_fill[0], replaced_values=fill)
+            def saturated(frame: Any = frame, hot: NDArray[np.intp] = hot_fill[0]
+                          ) -> NDArray[np.bool_]:
+                sat = saturation_mask(frame, channel, region=region,
+                                      level=settings.saturation_level)
+                if hot.size:
+                    # A hot pixel sits at the top code in every frame whatever the light:
+                    # it was replaced above, so it must not mark the spot saturated either.
+                    sat.flat[hot] = False
+                return sat
+
+            # The mask is made only when an aperture pixel's Y' reaches the floor (the
+            # integrator reads the codes it uses anyway).
+            floor = (saturation_floor(frame, region=region, level=settings.saturation_level)
+                     if coded is not None else None)
+            integ.add(lin, time_s=frame.time_s, shift_px=(sh[0], sh[1]),
+                      saturated_crop=saturated if floor is not None else saturated(),
+                      saturation_floor=floor, coded=coded, replaced=hot_fill[0],
+                      replaced_values=fill)
             clipped_any |= integ.clip_shift(sh[0], sh[1])[2]
             if project:
                 assert crop_acc is not None and lin is not None

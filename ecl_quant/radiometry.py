@@ -71,6 +71,7 @@ __all__ = [
     "channel_values",
     "linearize",
     "linear_values",
+    "saturation_floor",
     "saturation_mask",
     "load_transfer_profile",
     "master_dark",
@@ -941,6 +942,35 @@ def _table_codes(frame: Frame, channel: str, spec: TransferSpec,
     return key, (source if lazy else source.crop_codes())
 
 
+def _video_saturation_codes(frame: Frame, b: tuple[int, int, int, int], level: float
+                            ) -> tuple[Any, float]:
+    """Y' code from which a video pixel is saturated by its luma alone, and the Y' from
+    which its R', G' or B' could reach ``level`` given the crop's chroma (inf without
+    chroma); see :func:`saturation_mask`."""
+    y_off, y_span, _, _ = _video_scales(frame)
+    r0, r1, c0, c1 = b
+    # Integer codes: code >= t exactly when code >= ceil(t) (a faster comparison).
+    y_code = _code_threshold(level * (y_off + y_span), frame.data.dtype)
+    y_min = (_video_candidate_luma(frame, b, level - 1e-5)
+             if frame.chroma is not None and r1 > r0 and c1 > c0 else math.inf)
+    return y_code, y_min
+
+
+def saturation_floor(frame: Frame, *, region: tuple[slice, slice] | None = None,
+                     level: float = 0.98) -> int | None:
+    """For video: a Y' code below which no pixel of the crop is saturated in
+    :func:`saturation_mask`'s sense (whatever its chroma, within the crop's chroma
+    extremes); None for other frames. A reader that knows the Y' of the pixels it uses
+    can skip the mask when all are below it."""
+    if frame.kind != "video":
+        return None
+    if not 0.0 < level <= 1.0:
+        raise InputFormatError(f"saturation level {level!r} must be in (0, 1]")
+    y_code, y_min = _video_saturation_codes(frame, _bounds(region, frame.shape), level)
+    floor = min(float(y_code), math.floor(y_min))
+    return int(max(floor, 0)) if math.isfinite(floor) else None
+
+
 def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] | None = None,
                     level: float = 0.98) -> NDArray[np.bool_]:
     """Pixels at or near the encoded maximum (judged on codes, before linearisation).
@@ -966,13 +996,8 @@ def saturation_mask(frame: Frame, channel: str, *, region: tuple[slice, slice] |
     b = _bounds(region, frame.shape)
     r0, r1, c0, c1 = b
     if frame.kind == "video":
-        y_off, y_span, _, _ = _video_scales(frame)
-        peak = y_off + y_span
         luma = frame.data[r0:r1, c0:c1]
-        # Integer codes: code >= t exactly when code >= ceil(t) (a faster comparison).
-        y_code = _code_threshold(level * peak, luma.dtype)
-        y_min = (_video_candidate_luma(frame, b, level - 1e-5)
-                 if frame.chroma is not None and luma.size else math.inf)
+        y_code, y_min = _video_saturation_codes(frame, b, level)
         if luma.size and float(luma.max()) < min(float(y_code), math.floor(y_min)):
             return np.zeros(luma.shape, dtype=bool)  # no pixel can reach the level
         mask = np.asarray(luma >= y_code)

@@ -346,6 +346,36 @@ def test_limited_range_is_not_clipped():
     np.testing.assert_array_equal(saturation_mask(fr, "red"), [[False, False, True, True]])
 
 
+@pytest.mark.parametrize("yuv_range", ["limited", "full"])
+def test_saturation_floor_bounds_the_video_saturation_mask(yuv_range):
+    # No pixel below the floor may be saturated in saturation_mask's sense (its R', G',
+    # B' from the BT formulas, CAMERA_NOTES 1.4, or Y' at the peak), whatever the chroma
+    # (including strongly coloured crops whose R' or B' saturates at moderate Y').
+    from ecl_quant.radiometry import saturation_floor
+
+    rng = np.random.default_rng(61)
+    for trial in range(40):
+        h, w = 24, 30
+        y = rng.integers(100 if trial % 2 else 0, 256, (h, w), np.uint8)
+        spread = int(rng.integers(1, 128))
+        cb = rng.integers(128 - spread, 128 + spread, (h // 2, w // 2)).astype(np.uint8)
+        cr = rng.integers(128 - spread, 128 + spread, (h // 2, w // 2)).astype(np.uint8)
+        fr = Frame(index=0, time_s=0.0, data=y, max_code=255, source="m", kind="video",
+                   chroma=(cb, cr), chroma_step=(2, 2), yuv_matrix="bt709",
+                   yuv_range=yuv_range)
+        region = (slice(2, 20), slice(3, 27))
+        floor = saturation_floor(fr, region=region)
+        mask = saturation_mask(fr, "red", region=region)
+        assert floor is not None and 0 <= floor <= 255
+        assert not mask[y[region] < floor].any()
+        # ... and Y' at the peak code is saturated: the floor is not above it.
+        peak = 235 if yuv_range == "limited" else 255
+        assert floor <= math.ceil(0.98 * peak)
+    still = Frame(index=0, time_s=0.0, data=np.zeros((4, 4, 3), np.uint8), max_code=255,
+                  source="s", kind="still")
+    assert saturation_floor(still) is None
+
+
 def test_rotated_video_channel_values_match_pyav(tmp_path):
     # After rotation (np.rot90 of all planes) a crop must still match PyAV's rgb24 of the
     # unrotated frame, rotated the same way (CAMERA_NOTES 4).
