@@ -1149,7 +1149,9 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
         import numba
     except ImportError:
         return None
-    plain = numba.njit(cache=True, nogil=True)
+    # error_model "numpy": a division by zero gives inf / nan instead of raising, so
+    # loops with a division are vectorised
+    plain = numba.njit(cache=True, nogil=True, error_model="numpy")
 
     @plain
     def halve_to_float(src: Any, out: Any) -> Any:
@@ -1256,7 +1258,8 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
                     o[j] = (o[j] - m) * wr[j]
         return out, t1, t2
 
-    @numba.njit(cache=True, nogil=True, fastmath={"reassoc", "nsz", "contract"})
+    @numba.njit(cache=True, nogil=True, error_model="numpy",
+                fastmath={"reassoc", "nsz", "contract"})
     def spectral_lags(cross: Any, weight: Any, ix: int, iy: int, cos_x: Any, sin_x: Any,
                       cos_y: Any, sin_y: Any) -> Any:
         # The sums of _spectral_lags: cross is the float32 view (re, im interleaved) of
@@ -1295,9 +1298,37 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
                     out[e, d] += np.float64(rr) * cos_y[t] - np.float64(ii) * sin_y[t]
         return out / (rows * cols)
 
+    @plain
+    def cross_power(spec: Any, ref: Any, eps: float) -> Any:
+        # spec * conj(ref) and its normalised form P |P| / (|P|^2 + eps), float32 views
+        # (re, im interleaved) of complex64 spectra, the float32 arithmetic of numpy.
+        h, w2 = spec.shape
+        cross = np.empty_like(spec)
+        norm = np.empty_like(spec)
+        e = np.float32(eps)
+        for i in range(h):
+            a = spec[i]
+            b = ref[i]
+            x = cross[i]
+            y = norm[i]
+            for k in range(w2 // 2):
+                ar = a[2 * k]
+                ai = a[2 * k + 1]
+                br = b[2 * k]
+                bi = -b[2 * k + 1]
+                re = ar * br - ai * bi
+                im = ar * bi + ai * br
+                x[2 * k] = re
+                x[2 * k + 1] = im
+                m = np.sqrt(re * re + im * im)
+                f = m / (m * m + e)
+                y[2 * k] = re * f
+                y[2 * k + 1] = im * f
+        return cross, norm
+
     return types.SimpleNamespace(halve_to_float=halve_to_float, quarter_to_float=quarter_to_float,
                                  box_down_twice=box_down_twice, highpass_rest=highpass_rest,
-                                 spectral_lags=spectral_lags)
+                                 spectral_lags=spectral_lags, cross_power=cross_power)
 
 
 def _halve(img: NDArray[np.generic], channel: int | None = None) -> NDArray[np.generic]:
@@ -1624,11 +1655,36 @@ def _phase_peak(cross: NDArray[np.complexfloating], shape: tuple[int, int]
     den = mag * mag
     den += _FLT_EPS
     np.divide(mag, den, out=mag)
-    c = _irfft2(cross * mag, shape)  # includes cv2's division of the response by M * N
+    return _peak_of(cross * mag, shape)
+
+
+def _cross_spectra(ref: _Prepared, img: _Prepared
+                   ) -> tuple[NDArray[np.complex64], NDArray[np.complex64]]:
+    """The cross spectrum of two prepared images (the image's spectrum times the
+    reference's conjugate) and its normalised form ``P |P| / (|P|^2 + FLT_EPSILON)``."""
+    kern = _drift_kernels()
+    a, b = img.spectrum, ref.spectrum
+    if (kern is not None and a.dtype == b.dtype == np.complex64 and a.shape == b.shape
+            and a.flags.c_contiguous and b.flags.c_contiguous):
+        cross, norm = kern.cross_power(a.view(np.float32), b.view(np.float32), _FLT_EPS)
+        return cross.view(np.complex64), norm.view(np.complex64)
+    cross = a * ref.conj_spectrum()
+    mag = np.abs(cross)
+    den = mag * mag
+    den += _FLT_EPS
+    np.divide(mag, den, out=mag)
+    return cross, cross * mag
+
+
+def _peak_of(norm: NDArray[np.complexfloating], shape: tuple[int, int]
+             ) -> tuple[float, float, float]:
+    """Peak, its 5 x 5 centroid and response of the inverse DFT of a normalised cross
+    spectrum (see :func:`_phase_correlate`)."""
+    c = _irfft2(norm, shape)  # includes cv2's division of the response by M * N
     rows, cols = shape
     py, px = divmod(int(np.argmax(c)), cols)
     d = np.arange(-2, 3)
-    box = c[np.ix_((py + d) % rows, (px + d) % cols)].astype(np.float64)
+    box = c[((py + d) % rows)[:, None], (px + d) % cols].astype(np.float64)
     total = float(box.sum())
     den_c = total + 2.220446049250313e-16  # cv2: + DBL_EPSILON
     oy = float(box.sum(axis=1) @ d) / den_c
@@ -1649,8 +1705,8 @@ def _shift_between(ref: _Prepared, img: _Prepared) -> tuple[float, float, float]
     """
     h, w = ref.windowed.shape
     shape = (cv2.getOptimalDFTSize(h), cv2.getOptimalDFTSize(w))
-    cross = img.spectrum * ref.conj_spectrum()
-    dx, dy, resp = _phase_peak(cross, shape)
+    cross, norm = _cross_spectra(ref, img)
+    dx, dy, resp = _peak_of(norm, shape)
     if (ref.blur is not None and ref.blur == img.blur
             and math.isfinite(dx) and math.isfinite(dy)):
         ix, iy = int(round(dx)), int(round(dy))
