@@ -1232,21 +1232,35 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
         # window (not empty), (result - float32(mean)) * window instead, in float32.
         h, w = med.shape
         tmp = np.empty_like(med)
-        low = np.empty_like(med)
         box_down(low_h, r, tmp)
-        box_down(tmp, r, low)
-        out = tmp  # no longer needed
+        out = np.empty_like(med)
         s1 = np.zeros(w)
         s2 = np.zeros(w)
+        # the second pass of box_down, each blurred value (float32) subtracted at once
+        inv = 1.0 / (2 * r + 1)
+        acc = np.zeros(w)
+        for t in range(-r, r + 1):
+            row = tmp[-t - 1 if t < 0 else t]
+            for j in range(w):
+                acc[j] += row[j]
         for i in range(h):
             a = med[i]
-            b = low[i]
             o = out[i]
             for j in range(w):
-                v = a[j] - b[j]
+                v = a[j] - np.float32(acc[j] * inv)
                 o[j] = v
                 s1[j] += v
                 s2[j] += np.float64(v) * v
+            i_in = i + r + 1
+            i_out = i - r
+            if i_in >= h:
+                i_in = 2 * h - i_in - 1
+            if i_out < 0:
+                i_out = -i_out - 1
+            ra = tmp[i_in]
+            rb = tmp[i_out]
+            for j in range(w):
+                acc[j] += np.float64(ra[j]) - np.float64(rb[j])
         t1 = s1.sum()
         t2 = s2.sum()
         if window.size:
@@ -1326,9 +1340,27 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
                 y[2 * k + 1] = im * f
         return cross, norm
 
+    @plain
+    def peak_box(c: Any, py: int, px: int) -> Any:
+        # Sum of the 5 x 5 samples around (py, px) of a periodic surface, and its first
+        # moments along the rows and the columns (offsets -2 .. 2), in float64.
+        rows, cols = c.shape
+        total = 0.0
+        my = 0.0
+        mx = 0.0
+        for dy in range(-2, 3):
+            row = c[(py + dy) % rows]
+            for dx in range(-2, 3):
+                v = np.float64(row[(px + dx) % cols])
+                total += v
+                my += dy * v
+                mx += dx * v
+        return total, my, mx
+
     return types.SimpleNamespace(halve_to_float=halve_to_float, quarter_to_float=quarter_to_float,
                                  box_down_twice=box_down_twice, highpass_rest=highpass_rest,
-                                 spectral_lags=spectral_lags, cross_power=cross_power)
+                                 spectral_lags=spectral_lags, cross_power=cross_power,
+                                 peak_box=peak_box)
 
 
 def _halve(img: NDArray[np.generic], channel: int | None = None) -> NDArray[np.generic]:
@@ -1683,12 +1715,17 @@ def _peak_of(norm: NDArray[np.complexfloating], shape: tuple[int, int]
     c = _irfft2(norm, shape)  # includes cv2's division of the response by M * N
     rows, cols = shape
     py, px = divmod(int(np.argmax(c)), cols)
-    d = np.arange(-2, 3)
-    box = c[((py + d) % rows)[:, None], (px + d) % cols].astype(np.float64)
-    total = float(box.sum())
+    kern = _drift_kernels()
+    if kern is not None:
+        total, my, mx = kern.peak_box(c, py, px)
+    else:
+        d = np.arange(-2, 3)
+        box = c[((py + d) % rows)[:, None], (px + d) % cols].astype(np.float64)
+        total = float(box.sum())
+        my, mx = float(box.sum(axis=1) @ d), float(box.sum(axis=0) @ d)
     den_c = total + 2.220446049250313e-16  # cv2: + DBL_EPSILON
-    oy = float(box.sum(axis=1) @ d) / den_c
-    ox = float(box.sum(axis=0) @ d) / den_c
+    oy = my / den_c
+    ox = mx / den_c
     ly = py - rows if py > rows // 2 else py
     lx = px - cols if px > cols // 2 else px
     return lx + ox, ly + oy, total
