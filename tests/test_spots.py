@@ -644,3 +644,102 @@ def test_drift_tracker_same_shifts_with_and_without_kernels(monkeypatch):
     np.testing.assert_array_equal(fast[:, 3], plain[:, 3])
     np.testing.assert_allclose(fast[:, :2], plain[:, :2], rtol=0, atol=1e-3)
     np.testing.assert_allclose(fast[:, 2], plain[:, 2], rtol=0, atol=1e-5)
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16])
+def test_drift_kernel_quarter_is_two_opencv_area_steps(dtype):
+    # Reference: cv2.resize INTER_AREA 2 x 2 on the integer plane (rounded half up to a
+    # whole code), then on its float32 copy (exact): bit-identical, through
+    # downscale_for_drift too (factor 4 and 8) and on a row-padded view.
+    k = _kernels_or_skip()
+    rng = np.random.default_rng(8)
+    top = 255 if dtype == np.uint8 else 65535
+    buf = rng.integers(0, top + 1, (96, 200)).astype(dtype)
+    buf[:8, :8] = top  # the largest sums
+    acc = np.uint16 if dtype == np.uint8 else np.uint32
+    for img in (buf, buf[:, :160]):
+        h, w = img.shape
+        half = cv2.resize(img, (w // 2, h // 2), interpolation=cv2.INTER_AREA)
+        ref = cv2.resize(half.astype(np.float32), (w // 4, h // 4), interpolation=cv2.INTER_AREA)
+        ow = w // 4
+        got = k.quarter_to_float(img, np.empty((h // 4, ow), np.float32), np.empty(4 * ow, acc),
+                                 np.empty(4 * ow, acc), np.empty(2 * ow, acc))
+        np.testing.assert_array_equal(got, ref)
+        np.testing.assert_array_equal(downscale_for_drift(img, 4), ref)
+        ref8 = cv2.resize(cv2.resize(half, (w // 4, h // 4), interpolation=cv2.INTER_AREA)
+                          .astype(np.float32), (w // 8, h // 8), interpolation=cv2.INTER_AREA)
+        np.testing.assert_array_equal(downscale_for_drift(img, 8), ref8)
+
+
+def test_drift_fft_shortcuts_are_scipy_fft():
+    # Reference: scipy.fft.rfft2 / irfft2 (public functions): the same numbers.
+    from scipy import fft as sp_fft
+
+    from ecl_quant.spots import _irfft2, _rfft2
+
+    rng = np.random.default_rng(9)
+    for shape in ((135, 240), (97, 128), (96, 131)):
+        a = rng.random(shape).astype(np.float32)
+        spec = _rfft2(a, shape)
+        np.testing.assert_array_equal(spec, sp_fft.rfft2(a, s=shape))
+        q = (spec * np.float32(0.5)).astype(np.complex64)
+        np.testing.assert_array_equal(_irfft2(q, shape), sp_fft.irfft2(q, s=shape))
+
+
+def test_drift_kernel_cross_power_and_peak_box_are_the_numpy_code():
+    # Reference: numpy's complex64 product with the conjugate, P |P| / (|P|^2 + eps), and
+    # the 5 x 5 sums of np.roll-ed samples.
+    k = _kernels_or_skip()
+    rng = np.random.default_rng(10)
+    a = (rng.normal(size=(60, 41)) + 1j * rng.normal(size=(60, 41))).astype(np.complex64) * 1e4
+    b = (rng.normal(size=(60, 41)) + 1j * rng.normal(size=(60, 41))).astype(np.complex64) * 1e4
+    b[3, 4] = 0  # a zero product: 0 / eps
+    cross, norm = k.cross_power(a.view(np.float32), b.view(np.float32), 1.1920929e-07)
+    ref = a * np.conj(b)
+    mag = np.abs(ref)
+    np.testing.assert_allclose(cross.view(np.complex64), ref, rtol=1e-6, atol=0)
+    np.testing.assert_allclose(norm.view(np.complex64), ref * (mag / (mag * mag + 1.1920929e-07)),
+                               rtol=0, atol=2e-6)
+    assert norm.view(np.complex64)[3, 4] == 0
+    c = rng.random((20, 30)).astype(np.float32)
+    for py, px in ((0, 0), (19, 29), (10, 1), (7, 15)):
+        box = np.roll(c, (2 - py, 2 - px), axis=(0, 1))[:5, :5].astype(np.float64)
+        d = np.arange(-2, 3)
+        total, my, mx = k.peak_box(c, py, px)
+        assert total == pytest.approx(box.sum(), rel=1e-12)
+        assert my == pytest.approx(box.sum(axis=1) @ d, abs=1e-12)
+        assert mx == pytest.approx(box.sum(axis=0) @ d, abs=1e-12)
+
+
+@pytest.mark.parametrize("jit", ["1", "0"])
+def test_spectral_lags_are_the_blurred_correlation(monkeypatch, jit):
+    # Reference: the correlation of the two images, each blurred by cv2.GaussianBlur
+    # (1 px), summed directly with numpy at the nine lags around a known shift; windowed
+    # images (cv2.createHanningWindow, as the tracker), so that the border, where the
+    # two sums differ, hardly counts. With ECL_QUANT_JIT=0 the numpy sums.
+    from ecl_quant.spots import _rfft2, _spectral_lags
+
+    monkeypatch.setenv("ECL_QUANT_JIT", jit)
+    if jit == "1":
+        _kernels_or_skip()
+    from scipy import ndimage
+
+    shape = (135, 240)
+    win = cv2.createHanningWindow((240, 135), cv2.CV_32F)
+    a = _texture(shape, 2.0, 13)
+    b = ndimage.shift(a, (-2.3, 3.6), order=3, mode="wrap").astype(np.float32)
+    a, b = (a - a.mean()) * win, (b - b.mean()) * win
+    cross = _rfft2(b, shape) * np.conj(_rfft2(a, shape))
+    got = _spectral_lags(cross, shape, 1.0, 4, -2)
+    ab, bb = cv2.GaussianBlur(a, (0, 0), 1.0), cv2.GaussianBlur(b, (0, 0), 1.0)
+    ref = np.empty((3, 3))
+    for j in range(3):
+        for i in range(3):
+            lx, ly = 4 + i - 1, -2 + j - 1
+            ref[j, i] = float(np.sum(ab.astype(np.float64) * np.roll(bb, (-ly, -lx), axis=(0, 1))))
+    np.testing.assert_allclose(got, ref, rtol=2e-4)  # measured: 4e-5 (the border)
+    # the curvatures the parabolas use agree too
+    assert got[1, 0] - 2 * got[1, 1] + got[1, 2] == pytest.approx(
+        ref[1, 0] - 2 * ref[1, 1] + ref[1, 2], rel=5e-4)
+    assert got[0, 1] - 2 * got[1, 1] + got[2, 1] == pytest.approx(
+        ref[0, 1] - 2 * ref[1, 1] + ref[2, 1], rel=5e-4)
