@@ -1274,12 +1274,14 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
 
     @numba.njit(cache=True, nogil=True, error_model="numpy",
                 fastmath={"reassoc", "nsz", "contract"})
-    def spectral_lags(cross: Any, weight: Any, ix: int, iy: int, cos_x: Any, sin_x: Any,
-                      cos_y: Any, sin_y: Any) -> Any:
+    def spectral_lags(cross: Any, wy: Any, wx: Any, ix: int, iy: int, cos_x: Any,
+                      sin_x: Any, cos_y: Any, sin_y: Any) -> Any:
         # The sums of _spectral_lags: cross is the float32 view (re, im interleaved) of
-        # the complex64 cross spectrum; the tables hold cos / sin(2 pi n / N). Sums
-        # along a row in float32 (vectorised, in any order), over rows in float64.
-        h, wc = weight.shape
+        # the complex64 cross spectrum, wy, wx the weights of its rows and columns; the
+        # tables hold cos / sin(2 pi n / N). Sums along a row in float32 (vectorised, in
+        # any order), over rows in float64.
+        h = wy.size
+        wc = wx.size
         rows = cos_y.size
         cols = cos_x.size
         cx = np.empty((3, wc), np.float32)
@@ -1288,17 +1290,16 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
             step = (ix + d - 1) % cols
             for k in range(wc):
                 t = (k * step) % cols
-                cx[d, k] = cos_x[t]
-                sx[d, k] = sin_x[t]
+                cx[d, k] = cos_x[t] * wx[k]
+                sx[d, k] = sin_x[t] * wx[k]
         re = np.empty(wc, np.float32)
         im = np.empty(wc, np.float32)
         out = np.zeros((3, 3))
         for ky in range(h):
             row = cross[ky]
-            wr = weight[ky]
             for k in range(wc):
-                re[k] = row[2 * k] * wr[k]
-                im[k] = row[2 * k + 1] * wr[k]
+                re[k] = row[2 * k]
+                im[k] = row[2 * k + 1]
             for d in range(3):
                 rr = np.float32(0.0)
                 ii = np.float32(0.0)
@@ -1309,7 +1310,7 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
                     ii += re[k] * s[k] + im[k] * c[k]
                 for e in range(3):
                     t = (ky * ((iy + e - 1) % rows)) % rows
-                    out[e, d] += np.float64(rr) * cos_y[t] - np.float64(ii) * sin_y[t]
+                    out[e, d] += wy[ky] * (np.float64(rr) * cos_y[t] - np.float64(ii) * sin_y[t])
         return out / (rows * cols)
 
     @plain
@@ -1508,12 +1509,14 @@ def _parabola_peak(c: NDArray[np.float64], dx: float, dy: float) -> tuple[float,
 
 
 @lru_cache(maxsize=8)
-def _lag_weights(shape: tuple[int, int], blur: float) -> NDArray[np.float32]:
+def _lag_weights(shape: tuple[int, int], blur: float
+                 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Weights of a real DFT of size ``shape`` (``scipy.fft.rfft2`` layout) that turn
     sums over a cross spectrum into the cross-correlation of the two images, each
     blurred by the Gaussian cv2.GaussianBlur uses for ``blur`` px (float32 data: 8
     sigma + 1 taps): the squared DFT of that kernel, times 2 for the columns that stand
-    for their complex-conjugate twins of the full spectrum."""
+    for their complex-conjugate twins of the full spectrum; as the factors of the rows
+    and of the columns (their outer product is the weight)."""
     rows, cols = shape
     if blur > 0:
         ksize = int(np.rint(blur * 8 + 1)) | 1
@@ -1532,7 +1535,7 @@ def _lag_weights(shape: tuple[int, int], blur: float) -> NDArray[np.float32]:
     twin[0] = 1.0
     if cols % 2 == 0:
         twin[-1] = 1.0
-    return np.outer(gy**2, twin * gx**2).astype(np.float32)
+    return gy**2, twin * gx**2
 
 
 def _spectral_lags(cross: NDArray[np.complex64], shape: tuple[int, int], blur: float,
@@ -1542,13 +1545,15 @@ def _spectral_lags(cross: NDArray[np.complex64], shape: tuple[int, int], blur: f
     ``cross`` (image spectrum times the reference's conjugate, DFT size ``shape``): the
     inverse DFT at nine points only (two small matrix products)."""
     rows, cols = shape
-    weight = _lag_weights(shape, blur)
+    wy, wx = _lag_weights(shape, blur)
     kern = _drift_kernels()
-    if kern is not None and cross.dtype == np.complex64 and cross.flags.c_contiguous:
+    if (kern is not None and cross.dtype == np.complex64 and cross.flags.c_contiguous
+            and cross.shape == (rows, cols // 2 + 1)):
         cos_x, sin_x, cos_y, sin_y = _dft_tables(shape)
-        lags: NDArray[np.float64] = kern.spectral_lags(cross.view(np.float32), weight, ix, iy,
+        lags: NDArray[np.float64] = kern.spectral_lags(cross.view(np.float32), wy, wx, ix, iy,
                                                        cos_x, sin_x, cos_y, sin_y)
         return lags
+    weight = np.outer(wy, wx).astype(np.float32)
     d = np.arange(-1, 2)
     vx = np.exp((2j * np.pi / cols) * np.outer(np.arange(cols // 2 + 1), ix + d))
     vy = np.exp((2j * np.pi / rows) * np.outer(iy + d, np.arange(rows)))
@@ -1596,14 +1601,15 @@ def _rfft2(a: NDArray[np.float32], shape: tuple[int, int]) -> NDArray[np.complex
 
 
 def _irfft2(q: NDArray[np.complex64], shape: tuple[int, int]) -> NDArray[np.float32]:
-    """scipy.fft.irfft2(q, s=shape): the inverse of :func:`_rfft2`, divided by its size."""
+    """scipy.fft.irfft2(q, s=shape, norm="forward"): the inverse of :func:`_rfft2`, not
+    divided by its size (which saves a pass over the output)."""
     if _pocketfft is not None and q.dtype == np.complex64 and q.shape[1] == shape[1] // 2 + 1:
         try:
-            out: NDArray[np.float32] = _pocketfft.c2r(q, (0, 1), shape[1], False, 2, None, 1)
+            out: NDArray[np.float32] = _pocketfft.c2r(q, (0, 1), shape[1], False, 0, None, 1)
             return out
         except TypeError:  # pragma: no cover - a changed signature
             pass
-    return sp_fft.irfft2(q, s=shape)  # type: ignore[no-any-return]
+    return sp_fft.irfft2(q, s=shape, norm="forward")  # type: ignore[no-any-return]
 
 
 class _Prepared:
@@ -1712,7 +1718,7 @@ def _peak_of(norm: NDArray[np.complexfloating], shape: tuple[int, int]
              ) -> tuple[float, float, float]:
     """Peak, its 5 x 5 centroid and response of the inverse DFT of a normalised cross
     spectrum (see :func:`_phase_correlate`)."""
-    c = _irfft2(norm, shape)  # includes cv2's division of the response by M * N
+    c = _irfft2(norm, shape)  # times M * N: divided below (cv2's division of the response)
     rows, cols = shape
     py, px = divmod(int(np.argmax(c)), cols)
     kern = _drift_kernels()
@@ -1723,6 +1729,8 @@ def _peak_of(norm: NDArray[np.complexfloating], shape: tuple[int, int]
         box = c[((py + d) % rows)[:, None], (px + d) % cols].astype(np.float64)
         total = float(box.sum())
         my, mx = float(box.sum(axis=1) @ d), float(box.sum(axis=0) @ d)
+    size = rows * cols
+    total, my, mx = total / size, my / size, mx / size
     den_c = total + 2.220446049250313e-16  # cv2: + DBL_EPSILON
     oy = my / den_c
     ox = mx / den_c

@@ -672,7 +672,8 @@ def test_drift_kernel_quarter_is_two_opencv_area_steps(dtype):
 
 
 def test_drift_fft_shortcuts_are_scipy_fft():
-    # Reference: scipy.fft.rfft2 / irfft2 (public functions): the same numbers.
+    # Reference: scipy.fft.rfft2 / irfft2 (public functions; the inverse not divided by
+    # the size, norm="forward"): the same numbers.
     from scipy import fft as sp_fft
 
     from ecl_quant.spots import _irfft2, _rfft2
@@ -683,7 +684,7 @@ def test_drift_fft_shortcuts_are_scipy_fft():
         spec = _rfft2(a, shape)
         np.testing.assert_array_equal(spec, sp_fft.rfft2(a, s=shape))
         q = (spec * np.float32(0.5)).astype(np.complex64)
-        np.testing.assert_array_equal(_irfft2(q, shape), sp_fft.irfft2(q, s=shape))
+        np.testing.assert_array_equal(_irfft2(q, shape), sp_fft.irfft2(q, s=shape, norm="forward"))
 
 
 def test_drift_kernel_cross_power_and_peak_box_are_the_numpy_code():
