@@ -198,20 +198,60 @@ def _compile() -> types.SimpleNamespace:
             cnt[g] = max(int(w_sum), 1)
         return med, mean, sd_out, cnt
 
+    # Gathers walk runs of consecutive columns in one row (an aperture or annulus row
+    # between masks; see as_runs): contiguous reads, a few thousand runs per frame.
+
     @plain
-    def gather(codes: Any, rows: Any, cols: Any, dy: int, dx: int, table: Any, hit: Any,
-               hit_values: Any, vals: Any, keys: Any) -> Any:
-        # Code and value of every aperture and annulus entry; replaced (hot) pixels
-        # take their given values. Returns which entries were replaced.
-        for i in range(rows.size):
-            c = codes[rows[i] + dy, cols[i] + dx]
-            keys[i] = c
-            vals[i] = table[c]
-        gone = np.zeros(rows.size, np.bool_)
+    def patch(hit: Any, hit_values: Any, vals: Any) -> Any:
+        # Replaced (hot) pixels take their given values; returns which entries they are.
+        gone = np.zeros(vals.size, np.bool_)
         for j in range(hit.size):
             vals[hit[j]] = hit_values[j]
             gone[hit[j]] = True
         return gone
+
+    @plain
+    def gather(codes: Any, runs: Any, dy: int, dx: int, table: Any, hit: Any,
+               hit_values: Any, vals: Any, keys: Any) -> Any:
+        # Code and value of every aperture and annulus entry from a crop of codes.
+        for q in range(runs.shape[0]):
+            e0, r, c, n = runs[q, 0], runs[q, 1] + dy, runs[q, 2] + dx, runs[q, 3]
+            row = codes[r]
+            kk = keys[e0:e0 + n]
+            for t in range(n):
+                kk[t] = row[c + t]
+            vv = vals[e0:e0 + n]
+            for t in range(n):
+                vv[t] = table[kk[t]]
+        return patch(hit, hit_values, vals)
+
+    @plain
+    def gather_planes(luma: Any, chroma: Any, r0: int, c0: int, sy_shift: int,
+                      sx_shift: int, paired: bool, runs: Any, dy: int, dx: int,
+                      table: Any, hit: Any, hit_values: Any, vals: Any, keys: Any) -> Any:
+        # As gather, with the codes read from the decoded planes (see
+        # radiometry.PlaneSource): Y' or Y' * 256 + the nearest chroma sample
+        # chroma[min(y >> sy_shift, last row), min(x >> sx_shift, last column)].
+        last_r = chroma.shape[0] - 1
+        last_c = chroma.shape[1] - 1
+        for q in range(runs.shape[0]):
+            e0, n = runs[q, 0], runs[q, 3]
+            r = r0 + runs[q, 1] + dy
+            c = c0 + runs[q, 2] + dx
+            y_row = luma[r]
+            kk = keys[e0:e0 + n]
+            if paired:
+                c_row = chroma[min(r >> sy_shift, last_r)]
+                for t in range(n):
+                    kk[t] = (np.int32(y_row[c + t]) << 8) | np.int32(
+                        c_row[min((c + t) >> sx_shift, last_c)])
+            else:
+                for t in range(n):
+                    kk[t] = y_row[c + t]
+            vv = vals[e0:e0 + n]
+            for t in range(n):
+                vv[t] = table[kk[t]]
+        return patch(hit, hit_values, vals)
 
     @plain
     def annulus_rows(keys: Any, vals: Any, gone: Any, n_gone_total: int, starts: Any,
@@ -309,31 +349,6 @@ def _compile() -> types.SimpleNamespace:
         return cv, cc, width, True
 
     @plain
-    def gather_planes(luma: Any, chroma: Any, r0: int, c0: int, chroma_rows: Any,
-                      chroma_cols: Any, paired: bool, rows: Any, cols: Any, dy: int,
-                      dx: int, table: Any, hit: Any, hit_values: Any, vals: Any,
-                      keys: Any) -> Any:
-        # As gather, with the codes read from the decoded planes (see
-        # radiometry.PlaneSource): Y' or Y' * 256 + the nearest chroma sample.
-        if paired:
-            for i in range(rows.size):
-                r = r0 + rows[i] + dy
-                c = c0 + cols[i] + dx
-                k = (np.int32(luma[r, c]) << 8) | np.int32(chroma[chroma_rows[r], chroma_cols[c]])
-                keys[i] = k
-                vals[i] = table[k]
-        else:
-            for i in range(rows.size):
-                k = np.int32(luma[r0 + rows[i] + dy, c0 + cols[i] + dx])
-                keys[i] = k
-                vals[i] = table[k]
-        gone = np.zeros(rows.size, np.bool_)
-        for j in range(hit.size):
-            vals[hit[j]] = hit_values[j]
-            gone[hit[j]] = True
-        return gone
-
-    @plain
     def frame_stats(keys: Any, vals: Any, gone: Any, n_hit: int, starts: Any, ap_w: Any,
                     ap_w2: Any, x0: Any, x1: Any, with_noise: bool, paired: bool,
                     clip_sigma: float, table: Any) -> Any:
@@ -359,24 +374,23 @@ def _compile() -> types.SimpleNamespace:
         return s1, s2, med, mean, sd, cnt, lev, sq, y_max, True
 
     @plain
-    def spot_frame(codes: Any, rows: Any, cols: Any, dy: int, dx: int, table: Any,
-                   starts: Any, ap_w: Any, ap_w2: Any, hit: Any, hit_values: Any, x0: Any,
-                   x1: Any, with_noise: bool, paired: bool, clip_sigma: float,
-                   vals: Any) -> Any:
-        keys = np.empty(rows.size, np.int32)
-        gone = gather(codes, rows, cols, dy, dx, table, hit, hit_values, vals, keys)
+    def spot_frame(codes: Any, runs: Any, dy: int, dx: int, table: Any, starts: Any,
+                   ap_w: Any, ap_w2: Any, hit: Any, hit_values: Any, x0: Any, x1: Any,
+                   with_noise: bool, paired: bool, clip_sigma: float, vals: Any) -> Any:
+        keys = np.empty(vals.size, np.int32)
+        gone = gather(codes, runs, dy, dx, table, hit, hit_values, vals, keys)
         return frame_stats(keys, vals, gone, hit.size, starts, ap_w, ap_w2, x0, x1,
                            with_noise, paired, clip_sigma, table)
 
     @plain
-    def spot_frame_planes(luma: Any, chroma: Any, r0: int, c0: int, chroma_rows: Any,
-                          chroma_cols: Any, rows: Any, cols: Any, dy: int, dx: int,
-                          table: Any, starts: Any, ap_w: Any, ap_w2: Any, hit: Any,
-                          hit_values: Any, x0: Any, x1: Any, with_noise: bool,
-                          paired: bool, clip_sigma: float, vals: Any) -> Any:
-        keys = np.empty(rows.size, np.int32)
-        gone = gather_planes(luma, chroma, r0, c0, chroma_rows, chroma_cols, paired, rows,
-                             cols, dy, dx, table, hit, hit_values, vals, keys)
+    def spot_frame_planes(luma: Any, chroma: Any, r0: int, c0: int, sy_shift: int,
+                          sx_shift: int, runs: Any, dy: int, dx: int, table: Any,
+                          starts: Any, ap_w: Any, ap_w2: Any, hit: Any, hit_values: Any,
+                          x0: Any, x1: Any, with_noise: bool, paired: bool,
+                          clip_sigma: float, vals: Any) -> Any:
+        keys = np.empty(vals.size, np.int32)
+        gone = gather_planes(luma, chroma, r0, c0, sy_shift, sx_shift, paired, runs, dy,
+                             dx, table, hit, hit_values, vals, keys)
         return frame_stats(keys, vals, gone, hit.size, starts, ap_w, ap_w2, x0, x1,
                            with_noise, paired, clip_sigma, table)
 
@@ -387,8 +401,13 @@ def _compile() -> types.SimpleNamespace:
                                  aperture_sums=aperture_sums, noise_sums=noise_sums)
 
 
-def as_rows_cols(flat: NDArray[np.integer[Any]], width: int
-                 ) -> tuple[NDArray[np.int32], NDArray[np.int32]]:
-    """Row and column (int32) of flat indices into an array ``width`` wide."""
+def as_runs(flat: NDArray[np.integer[Any]], width: int) -> NDArray[np.int64]:
+    """Flat indices into an array ``width`` wide as runs of consecutive columns in one
+    row: (n_runs, 4) rows of (first entry, row, column, length)."""
     r, c = np.divmod(np.asarray(flat, np.int64), int(width))
-    return r.astype(np.int32), c.astype(np.int32)
+    new = np.ones(r.size, bool)
+    if r.size:
+        new[1:] = (r[1:] != r[:-1]) | (c[1:] != c[:-1] + 1)
+    first = np.flatnonzero(new)
+    length = np.diff(np.append(first, r.size))
+    return np.column_stack([first, r[first], c[first], length]).astype(np.int64)

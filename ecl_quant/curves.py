@@ -1333,11 +1333,18 @@ class SpotIntegrator:
         source = getattr(coded, "source", None)
         if source is None and coded.codes.dtype not in (np.uint8, np.uint16):
             return None
-        rc = fast.get("rows_cols")
-        if rc is None:
-            rc = _jit.as_rows_cols(fast["pix"], self.geometry.shape[1])
-            fast["rows_cols"] = rc
+        if source is not None and source.step[0] & (source.step[0] - 1) | (
+                source.step[1] & (source.step[1] - 1)):
+            source = None  # chroma steps that are not powers of two: from the crop
+            if coded.codes.dtype not in (np.uint8, np.uint16):
+                return None
+        runs = fast.get("runs")
+        if runs is None:
+            runs = _jit.as_runs(fast["pix"], self.geometry.shape[1])
+            fast["runs"] = runs
             fast["starts_all"] = np.append(fast["starts"], fast["pix"].size).astype(np.int64)
+        shifts = (None if source is None else
+                  tuple(int(v).bit_length() - 1 for v in source.step))
         if hit.size:
             if linear_crop is not None:
                 hit_values = linear_crop.reshape(-1)[where[hit]].astype(np.float32)
@@ -1357,16 +1364,16 @@ class SpotIntegrator:
                   hit_values, x0, x1, bool(with_noise), bool(getattr(coded, "paired", False)),
                   float(self.clip_sigma), vals)
         if source is not None:
+            assert shifts is not None
             chroma = source.luma if source.chroma is None else source.chroma
             out = kernels.spot_frame_planes(
                 source.luma, chroma, int(source.bounds[0]), int(source.bounds[2]),
-                source.chroma_rows, source.chroma_cols, rc[0], rc[1], int(sy), int(sx),
-                *common)
+                shifts[0], shifts[1], runs, int(sy), int(sx), *common)
         else:
             # One compiled variant per code type, not per memory layout (a view of a
             # plane is copied: a fraction of the crop's cost).
-            out = kernels.spot_frame(np.ascontiguousarray(coded.codes), rc[0], rc[1],
-                                     int(sy), int(sx), *common)
+            out = kernels.spot_frame(np.ascontiguousarray(coded.codes), runs, int(sy),
+                                     int(sx), *common)
         s1, s2, med, mean, sd, cnt, lev, sq, y_max, ok = out
         if not ok:
             return None

@@ -742,18 +742,24 @@ def test_compiled_plane_gather_equals_the_formulas(rotation, channel):
     expected = linearize(channel_values(fr, channel, region=region), TransferSpec("bt709"),
                          channel=channel)
     ch, cw = expected.shape
-    dy, dx = 0, 0
-    rows = rng.integers(0, ch, 500).astype(np.int32)
-    cols = rng.integers(0, cw, 500).astype(np.int32)
+    # Random pixels (runs of one) and whole rows of the crop (runs to its last column),
+    # read with a shift of the runs by (dy, dx) = (-1, 1).
+    dy, dx = -1, 1
+    flat = np.concatenate([rng.integers(0, (ch - 1) * (cw - 1), 300),
+                           np.arange(5 * cw, 7 * cw)])
+    rows, cols = np.divmod(flat, cw)
+    keep = (rows + dy >= 0) & (cols + dx < cw)
+    rows, cols = rows[keep], cols[keep]
+    runs = _jit.as_runs(rows * cw + cols, cw)
+    assert runs.shape[0] < rows.size  # the whole rows became runs
     vals = np.empty(rows.size, np.float32)
     keys = np.empty(rows.size, np.int32)
     chroma = src.luma if src.chroma is None else src.chroma
-    gone = kernels.gather_planes(src.luma, chroma, src.bounds[0], src.bounds[2],
-                                 src.chroma_rows, src.chroma_cols, lazy.paired, rows, cols,
-                                 dy, dx, lazy.table, np.zeros(0, np.int64),
-                                 np.zeros(0, np.float32), vals, keys)
+    gone = kernels.gather_planes(src.luma, chroma, src.bounds[0], src.bounds[2], 1, 1,
+                                 lazy.paired, runs, dy, dx, lazy.table,
+                                 np.zeros(0, np.int64), np.zeros(0, np.float32), vals, keys)
     assert not gone.any()
-    np.testing.assert_array_equal(vals, expected[rows, cols])
+    np.testing.assert_array_equal(vals, expected[rows + dy, cols + dx])
 
 
 def test_coded_crop_of_stills_and_none_where_no_table():
