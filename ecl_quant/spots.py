@@ -1191,38 +1191,41 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
                 o[m] = np.float32(t[2 * m] + t[2 * m + 1]) * np.float32(0.25)
         return out
 
-    @plain
-    def box_down(src: Any, r: int, out: Any) -> None:
-        # Mean over rows i - r .. i + r (BORDER_REFLECT, r < rows): a running sum in
-        # float64 per column, times 1 / (2 r + 1), as cv2.blur (vectorised over rows).
-        h, w = src.shape
-        inv = 1.0 / (2 * r + 1)
-        acc = np.zeros(w)
-        for t in range(-r, r + 1):
-            row = src[-t - 1 if t < 0 else t]
-            for j in range(w):
-                acc[j] += row[j]
-        for i in range(h):
-            o = out[i]
-            for j in range(w):
-                o[j] = acc[j] * inv
-            i_in = i + r + 1
-            i_out = i - r
-            if i_in >= h:
-                i_in = 2 * h - i_in - 1
-            if i_out < 0:
-                i_out = -i_out - 1
-            ra = src[i_in]
-            rb = src[i_out]
-            for j in range(w):
-                acc[j] += np.float64(ra[j]) - np.float64(rb[j])
+    # (No kernel calls another: numba's disk cache misses for a kernel that calls one
+    # made in the same closure, and it would compile again in every process.)
 
     @plain
     def box_down_twice(src: Any, r: int) -> Any:
+        # Twice the mean over rows i - r .. i + r (BORDER_REFLECT, r < rows): running
+        # sums in float64 per column, times 1 / (2 r + 1), as cv2.blur (vectorised
+        # over each row).
+        h, w = src.shape
+        inv = 1.0 / (2 * r + 1)
         tmp = np.empty_like(src)
         out = np.empty_like(src)
-        box_down(src, r, tmp)
-        box_down(tmp, r, out)
+        acc = np.zeros(w)
+        for p in range(2):
+            a = src if p == 0 else tmp
+            b = tmp if p == 0 else out
+            acc[:] = 0.0
+            for t in range(-r, r + 1):
+                row = a[-t - 1 if t < 0 else t]
+                for j in range(w):
+                    acc[j] += row[j]
+            for i in range(h):
+                o = b[i]
+                for j in range(w):
+                    o[j] = acc[j] * inv
+                i_in = i + r + 1
+                i_out = i - r
+                if i_in >= h:
+                    i_in = 2 * h - i_in - 1
+                if i_out < 0:
+                    i_out = -i_out - 1
+                ra = a[i_in]
+                rb = a[i_out]
+                for j in range(w):
+                    acc[j] += np.float64(ra[j]) - np.float64(rb[j])
         return out
 
     @plain
@@ -1231,14 +1234,32 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
         # part already applied), with the sum and sum of squares of the result; with a
         # window (not empty), (result - float32(mean)) * window instead, in float32.
         h, w = med.shape
+        inv = 1.0 / (2 * r + 1)
         tmp = np.empty_like(med)
-        box_down(low_h, r, tmp)
+        acc = np.zeros(w)
+        for t in range(-r, r + 1):  # first pass, as box_down_twice
+            row = low_h[-t - 1 if t < 0 else t]
+            for j in range(w):
+                acc[j] += row[j]
+        for i in range(h):
+            o = tmp[i]
+            for j in range(w):
+                o[j] = acc[j] * inv
+            i_in = i + r + 1
+            i_out = i - r
+            if i_in >= h:
+                i_in = 2 * h - i_in - 1
+            if i_out < 0:
+                i_out = -i_out - 1
+            ra = low_h[i_in]
+            rb = low_h[i_out]
+            for j in range(w):
+                acc[j] += np.float64(ra[j]) - np.float64(rb[j])
         out = np.empty_like(med)
         s1 = np.zeros(w)
         s2 = np.zeros(w)
-        # the second pass of box_down, each blurred value (float32) subtracted at once
-        inv = 1.0 / (2 * r + 1)
-        acc = np.zeros(w)
+        # the second pass, each blurred value (float32) subtracted at once
+        acc[:] = 0.0
         for t in range(-r, r + 1):
             row = tmp[-t - 1 if t < 0 else t]
             for j in range(w):
