@@ -1168,11 +1168,11 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
         return out
 
     @plain
-    def quarter_to_float(src: Any, out: Any, v0: Any, v1: Any, t: Any) -> Any:
+    def quarter_sums(src: Any, out: Any, v0: Any, v1: Any, t: Any) -> Any:
         # Two 2 x 2 steps of an integer plane in one pass: the first rounded half up to
         # a whole code ((a + b + c + d + 2) >> 2, cv2.resize INTER_AREA on integers),
-        # the second exact in float32 (as halve_to_float). v0, v1 (4 ow) and t (2 ow)
-        # are scratch rows of an integer type wide enough for sums of four codes.
+        # the second as the sum of the four (4 times the exact mean). out, v0, v1 (4 ow)
+        # and t (2 ow) are of an integer type wide enough for sums of four codes.
         oh, ow = out.shape
         w = 4 * ow
         for i in range(oh):
@@ -1188,54 +1188,73 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
                         + ((v1[2 * j] + v1[2 * j + 1] + 2) >> 2))
             o = out[i]
             for m in range(ow):
-                o[m] = np.float32(t[2 * m] + t[2 * m + 1]) * np.float32(0.25)
+                o[m] = t[2 * m] + t[2 * m + 1]
         return out
 
     # (No kernel calls another: numba's disk cache misses for a kernel that calls one
     # made in the same closure, and it would compile again in every process.)
 
     @plain
-    def box_down_twice(src: Any, r: int) -> Any:
-        # Twice the mean over rows i - r .. i + r (BORDER_REFLECT, r < rows): running
-        # sums in float64 per column, times 1 / (2 r + 1), as cv2.blur (vectorised
-        # over each row).
+    def box_down_twice(src: Any, r: int, scale: float) -> Any:
+        # Twice the mean over rows i - r .. i + r (BORDER_REFLECT, r < rows) of src
+        # times scale, as float32: running sums in float64 per column, times
+        # 1 / (2 r + 1), as cv2.blur (vectorised over each row). The two passes are
+        # written out (src may be uint16, the intermediate is float32).
         h, w = src.shape
-        inv = 1.0 / (2 * r + 1)
-        tmp = np.empty_like(src)
-        out = np.empty_like(src)
+        tmp = np.empty(src.shape, np.float32)
+        out = np.empty(src.shape, np.float32)
         acc = np.zeros(w)
-        for p in range(2):
-            a = src if p == 0 else tmp
-            b = tmp if p == 0 else out
-            acc[:] = 0.0
-            for t in range(-r, r + 1):
-                row = a[-t - 1 if t < 0 else t]
-                for j in range(w):
-                    acc[j] += row[j]
-            for i in range(h):
-                o = b[i]
-                for j in range(w):
-                    o[j] = acc[j] * inv
-                i_in = i + r + 1
-                i_out = i - r
-                if i_in >= h:
-                    i_in = 2 * h - i_in - 1
-                if i_out < 0:
-                    i_out = -i_out - 1
-                ra = a[i_in]
-                rb = a[i_out]
-                for j in range(w):
-                    acc[j] += np.float64(ra[j]) - np.float64(rb[j])
+        inv = scale / (2 * r + 1)
+        for t in range(-r, r + 1):
+            row = src[-t - 1 if t < 0 else t]
+            for j in range(w):
+                acc[j] += row[j]
+        for i in range(h):
+            o = tmp[i]
+            for j in range(w):
+                o[j] = acc[j] * inv
+            i_in = i + r + 1
+            i_out = i - r
+            if i_in >= h:
+                i_in = 2 * h - i_in - 1
+            if i_out < 0:
+                i_out = -i_out - 1
+            ra = src[i_in]
+            rb = src[i_out]
+            for j in range(w):
+                acc[j] += np.float64(ra[j]) - np.float64(rb[j])
+        acc[:] = 0.0
+        inv = 1.0 / (2 * r + 1)
+        for t in range(-r, r + 1):
+            row = tmp[-t - 1 if t < 0 else t]
+            for j in range(w):
+                acc[j] += row[j]
+        for i in range(h):
+            o = out[i]
+            for j in range(w):
+                o[j] = acc[j] * inv
+            i_in = i + r + 1
+            i_out = i - r
+            if i_in >= h:
+                i_in = 2 * h - i_in - 1
+            if i_out < 0:
+                i_out = -i_out - 1
+            ra = tmp[i_in]
+            rb = tmp[i_out]
+            for j in range(w):
+                acc[j] += np.float64(ra[j]) - np.float64(rb[j])
         return out
 
     @plain
-    def highpass_rest(low_h: Any, med: Any, r: int, window: Any) -> Any:
-        # med minus the vertical part of the double box blur of low_h (its horizontal
-        # part already applied), with the sum and sum of squares of the result; with a
-        # window (not empty), (result - float32(mean)) * window instead, in float32.
+    def highpass_rest(low_h: Any, med: Any, r: int, window: Any, scale: float) -> Any:
+        # med times scale (exact: scale 1 or 1/4) minus the vertical part of the double
+        # box blur of low_h (its horizontal part already applied), with the sum and sum
+        # of squares of the result; with a window (not empty), (result - float32(mean))
+        # * window instead, all in float32.
         h, w = med.shape
         inv = 1.0 / (2 * r + 1)
-        tmp = np.empty_like(med)
+        sc = np.float32(scale)
+        tmp = np.empty(med.shape, np.float32)
         acc = np.zeros(w)
         for t in range(-r, r + 1):  # first pass, as box_down_twice
             row = low_h[-t - 1 if t < 0 else t]
@@ -1255,7 +1274,7 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
             rb = low_h[i_out]
             for j in range(w):
                 acc[j] += np.float64(ra[j]) - np.float64(rb[j])
-        out = np.empty_like(med)
+        out = np.empty(med.shape, np.float32)
         s1 = np.zeros(w)
         s2 = np.zeros(w)
         # the second pass, each blurred value (float32) subtracted at once
@@ -1268,7 +1287,7 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
             a = med[i]
             o = out[i]
             for j in range(w):
-                v = a[j] - np.float32(acc[j] * inv)
+                v = np.float32(a[j]) * sc - np.float32(acc[j] * inv)
                 o[j] = v
                 s1[j] += v
                 s2[j] += np.float64(v) * v
@@ -1379,7 +1398,7 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
                 mx += dx * v
         return total, my, mx
 
-    return types.SimpleNamespace(halve_to_float=halve_to_float, quarter_to_float=quarter_to_float,
+    return types.SimpleNamespace(halve_to_float=halve_to_float, quarter_sums=quarter_sums,
                                  box_down_twice=box_down_twice, highpass_rest=highpass_rest,
                                  spectral_lags=spectral_lags, cross_power=cross_power,
                                  peak_box=peak_box)
@@ -1422,6 +1441,19 @@ def downscale_for_drift(plane: NDArray[np.generic], factor: int) -> NDArray[np.f
     see :func:`drift_plane`) is copied out in strips of rows that are averaged at once,
     instead of as one full-size copy.
     """
+    small, scale = _downscale_scaled(plane, factor)
+    if scale != 1.0:
+        return np.multiply(small, np.float32(scale), dtype=np.float32)
+    return small  # type: ignore[return-value]
+
+
+def _downscale_scaled(plane: NDArray[np.generic], factor: int
+                      ) -> tuple[NDArray[np.generic], float]:
+    """:func:`downscale_for_drift` as an image and a scale: the block means are the
+    image times the scale. For an 8-bit plane and a factor 4, 8, 16 ... with the
+    compiled kernels, the image holds the sums of the four whole-code means of the last
+    2 x 2 step (uint16, scale 1/4: exact, and a 3 x 3 median of uint16 costs a third of
+    one of float32); else it is the float32 result itself (scale 1)."""
     factor = max(1, int(factor))
     parent = _interleaved_parent(plane)
     h, w = plane.shape[:2]
@@ -1452,8 +1484,11 @@ def downscale_for_drift(plane: NDArray[np.generic], factor: int) -> NDArray[np.f
     if kern is not None and n_int:  # the last rounded and the first float step, one pass
         oh, ow = src.shape[0] // 4, src.shape[1] // 4
         acc = np.uint16 if src.dtype == np.uint8 else np.uint32
-        small = kern.quarter_to_float(src, np.empty((oh, ow), np.float32), np.empty(4 * ow, acc),
-                                      np.empty(4 * ow, acc), np.empty(2 * ow, acc))
+        sums = kern.quarter_sums(src, np.empty((oh, ow), acc), np.empty(4 * ow, acc),
+                                 np.empty(4 * ow, acc), np.empty(2 * ow, acc))
+        if n_float == 1 and rest == 1 and sums.dtype == np.uint16:
+            return sums, 0.25
+        small = np.multiply(sums, np.float32(0.25), dtype=np.float32)
         n_float -= 1
     elif kern is not None:  # the first float step straight from the integer plane
         small = kern.halve_to_float(src, np.empty((src.shape[0] // 2, src.shape[1] // 2),
@@ -1466,7 +1501,7 @@ def downscale_for_drift(plane: NDArray[np.generic], factor: int) -> NDArray[np.f
     if rest > 1:
         sh, sw = small.shape[:2]
         small = cv2.resize(small, (sw // rest, sh // rest), interpolation=cv2.INTER_AREA)
-    return np.ascontiguousarray(small, dtype=np.float32)
+    return np.ascontiguousarray(small, dtype=np.float32), 1.0
 
 
 def _lag_products(a: NDArray[np.float32], b: NDArray[np.float32], margin: int,
@@ -1824,10 +1859,12 @@ def _prepare_for_drift(small: NDArray[np.float32], highpass_px: float) -> NDArra
     return _highpass_moments(small, highpass_px)[0]
 
 
-def _highpass_moments(small: NDArray[np.float32], highpass_px: float, *,
-                      window: NDArray[np.float32] | None = None
+def _highpass_moments(small: NDArray[np.generic], highpass_px: float, *,
+                      window: NDArray[np.float32] | None = None, scale: float = 1.0
                       ) -> tuple[NDArray[np.float32], float, float]:
-    """:func:`_prepare_for_drift` of ``small``, and the mean and SD of the result.
+    """:func:`_prepare_for_drift` of ``small`` times ``scale`` (float32, or the uint16
+    sums of :func:`_downscale_scaled` with their scale), and the mean and SD of the
+    result.
 
     With ``window``, the first result is instead the high-passed image minus its mean
     (rounded to float32) times the window, in float32, as :class:`_Prepared` makes it.
@@ -1839,14 +1876,18 @@ def _highpass_moments(small: NDArray[np.float32], highpass_px: float, *,
     the vertical ones with a running sum along the columns, the last fused with the
     subtraction and the sums of the moments; same values within float32 rounding.
     """
-    med = cv2.medianBlur(small, 3) if min(small.shape) >= 3 else small
-    k = 2 * int(round(highpass_px)) + 1
     kern = _drift_kernels()
-    if kern is not None and k // 2 < min(med.shape) and med.dtype == np.float32:
+    k = 2 * int(round(highpass_px)) + 1
+    if small.dtype != np.float32 and (kern is None or small.dtype != np.uint16
+                                      or k // 2 >= min(small.shape)):
+        small, scale = np.multiply(small, np.float32(scale), dtype=np.float32), 1.0
+    # the median commutes with the (exact) scale
+    med = cv2.medianBlur(small, 3) if min(small.shape) >= 3 else small
+    if kern is not None and k // 2 < min(med.shape):
         r = k // 2
-        low_h = cv2.transpose(kern.box_down_twice(cv2.transpose(med), r))
+        low_h = cv2.transpose(kern.box_down_twice(cv2.transpose(med), r, scale))
         win = _NO_WINDOW if window is None else np.asarray(window, dtype=np.float32)
-        out, s1, s2 = kern.highpass_rest(low_h, med, r, win)
+        out, s1, s2 = kern.highpass_rest(low_h, med, r, win, scale)
         mean = s1 / out.size
         return out, mean, math.sqrt(max(s2 / out.size - mean * mean, 0.0))
     low = cv2.blur(cv2.blur(med, (k, k), borderType=cv2.BORDER_REFLECT),
@@ -1953,8 +1994,9 @@ class DriftTracker:
     def _prepared(self, plane: NDArray[np.generic]) -> tuple[_Prepared, float]:
         """This frame downscaled, filtered and made ready for phase correlation (its
         spectrum is kept if it becomes the reference), and its contrast."""
-        windowed, _, sd = _highpass_moments(downscale_for_drift(plane, self.factor),
-                                            self.highpass_px, window=self._window)
+        small, scale = _downscale_scaled(plane, self.factor)
+        windowed, _, sd = _highpass_moments(small, self.highpass_px, window=self._window,
+                                            scale=scale)
         return _Prepared.of_windowed(windowed, 1.0), sd
 
     def resume(self) -> DriftTracker:
