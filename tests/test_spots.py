@@ -744,3 +744,25 @@ def test_spectral_lags_are_the_blurred_correlation(monkeypatch, jit):
         ref[1, 0] - 2 * ref[1, 1] + ref[1, 2], rel=5e-4)
     assert got[0, 1] - 2 * got[1, 1] + got[2, 1] == pytest.approx(
         ref[0, 1] - 2 * ref[1, 1] + ref[2, 1], rel=5e-4)
+
+
+def test_integer_sums_path_is_the_float_path(monkeypatch):
+    # Reference: the OpenCV path (ECL_QUANT_JIT=0: downscale_for_drift in float32,
+    # cv2.medianBlur, cv2.blur twice, cv2.meanStdDev, then mean removed and windowed as
+    # _Prepared does). An 8-bit plane downscaled by 4 is kept as uint16 sums (4 x the
+    # block means, exact) through the median.
+    from ecl_quant.spots import _downscale_scaled, _highpass_moments
+
+    _kernels_or_skip()
+    rng = np.random.default_rng(12)
+    plane = np.clip(rng.normal(60, 25, (480, 640)), 0, 255).astype(np.uint8)
+    sums, scale = _downscale_scaled(plane, 4)
+    assert sums.dtype == np.uint16 and scale == 0.25
+    np.testing.assert_array_equal(sums * np.float32(0.25), downscale_for_drift(plane, 4))
+    win = cv2.createHanningWindow((160, 120), cv2.CV_32F)
+    got, mean, sd = _highpass_moments(sums, 6.0, window=win, scale=scale)
+    monkeypatch.setenv("ECL_QUANT_JIT", "0")
+    small = downscale_for_drift(plane, 4)
+    ref, ref_mean, ref_sd = _highpass_moments(small, 6.0)
+    np.testing.assert_allclose(got, (ref - np.float32(ref_mean)) * win, rtol=0, atol=5e-5)
+    assert (mean, sd) == pytest.approx((ref_mean, ref_sd), rel=1e-6, abs=1e-6)
