@@ -710,15 +710,17 @@ def _code_table(kind: str, channel: str, dtype: str, matrix: str, yuv_range: str
 
 @dataclass(frozen=True, eq=False)
 class PlaneSource:
-    """Where the codes of a video crop come from, for readers that gather only the
-    pixels they need (:mod:`ecl_quant._jit`) instead of building the whole crop.
+    """Where the codes of a crop come from, for readers that gather only the pixels
+    they need (:mod:`ecl_quant._jit`) instead of building the whole crop.
 
     Pixel (y, x) of the crop (frame pixel ``(r0 + y, c0 + x)``) has the code
-    ``luma[r, c]`` or, paired, ``luma[r, c] * 256 + chroma[chroma_rows[r],
-    chroma_cols[c]]``: the nearest-neighbour chroma of :func:`_upsample_chroma`.
+    ``luma[r, c]`` or, paired (video red/blue), ``luma[r, c] * 256 +
+    chroma[chroma_rows[r], chroma_cols[c]]``: the nearest-neighbour chroma of
+    :func:`_upsample_chroma`. For stills ``luma`` is the channel's plane (a strided
+    view of an RGB image) and there is no chroma.
     """
 
-    luma: NDArray[np.uint8]
+    luma: NDArray[Any]
     chroma: NDArray[np.uint8] | None
     bounds: tuple[int, int, int, int]  # (r0, r1, c0, c1) in frame pixels
     step: tuple[int, int]
@@ -735,6 +737,8 @@ class PlaneSource:
         r0, r1, c0, c1 = self.bounds
         y = self.luma[r0:r1, c0:c1]
         if self.chroma is None:
+            if y.strides[1] != y.itemsize:  # one channel of an interleaved still
+                return np.ascontiguousarray(y)
             return y
         idx = y.astype(np.uint16)
         idx <<= 8
@@ -913,13 +917,20 @@ def _table_codes(frame: Frame, channel: str, spec: TransferSpec,
             return None
         if float(frame.max_code) != float(np.iinfo(data.dtype).max):
             return None
+        key = ("still", "red", data.dtype.str, "", "", False, spec.kind, spec.gamma)
+        if lazy:  # the channel as a (strided) plane
+            plane = data if data.ndim == 2 else data[..., _RGB_INDEX[channel]]
+            h, w = plane.shape
+            return key, PlaneSource(luma=plane, chroma=None, bounds=(r0, r1, c0, c1),
+                                    step=(1, 1), chroma_rows=_chroma_lookup(h, 1, h),
+                                    chroma_cols=_chroma_lookup(w, 1, w))
         if data.ndim == 2:
             crop = data[r0:r1, c0:c1]
         else:  # one contiguous copy of the channel (cv2: a fast strided read)
             import cv2
 
             crop = cv2.extractChannel(data[r0:r1, c0:c1], _RGB_INDEX[channel])
-        return ("still", "red", data.dtype.str, "", "", False, spec.kind, spec.gamma), crop
+        return key, crop
     if frame.kind != "video" or data.dtype != np.uint8 or frame.bit_depth != 8:
         return None
     if channel == "luma" or (frame.chroma is None and channel in _RGB_INDEX):

@@ -514,6 +514,36 @@ def test_integrator_reads_video_codes_from_the_planes(code_path):
         np.testing.assert_allclose(x, y_, rtol=1e-12)
 
 
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16])
+def test_integrator_reads_still_codes_in_place(dtype, code_path):
+    # One channel of an RGB still, gathered in place (lazy coded crop of a strided
+    # plane), against the float path on linearize(channel_values) (sRGB EOTF,
+    # IEC 61966-2-1) with a shift; 16-bit codes take the numpy radix path.
+    from ecl_quant.frames import Frame
+    from ecl_quant.radiometry import channel_values, code_values, linearize
+    from ecl_quant.transfer import TransferSpec
+
+    rng = np.random.default_rng(45)
+    h, w = 57, 91
+    top = np.iinfo(dtype).max
+    ss = SpotSet((make_spot(1, "circle", (30.0, 26.0, 6.0)), make_spot(2, "circle", (62.0, 28.0, 5.0))))
+    a = SpotIntegrator(ss, (h, w), pad_px=3)
+    b = SpotIntegrator(ss, (h, w), pad_px=3)
+    for i, shift in enumerate([(0, 0), (0, 0), (0, 0), (-2, 1)]):
+        rgb = np.clip(np.round(rng.normal(0.3 * top, 0.01 * top, (h, w, 3))), 0, top).astype(dtype)
+        fr = Frame(index=i, time_s=float(i), data=rgb, max_code=float(top), source="s",
+                   kind="still", bit_depth=8 * np.dtype(dtype).itemsize)
+        coded = code_values(fr, "green", "srgb", region=a.region, lazy=True)
+        a.add(None, time_s=float(i), shift_px=shift, coded=coded)
+        b.add(linearize(channel_values(fr, "green", region=a.region), TransferSpec("srgb"),
+                        channel="green"), time_s=float(i), shift_px=shift)
+    ra, rb = a.raw_arrays(), b.raw_arrays()
+    for key in ("sum", "sum_w2", "bg", "bg_sd", "bg_n"):
+        np.testing.assert_allclose(ra[key], rb[key], rtol=1e-12, atol=0)
+    for x, y_ in zip(a.noise_observations(), b.noise_observations()):
+        np.testing.assert_allclose(x, y_, rtol=1e-12)
+
+
 def test_compiled_clipping_matches_a_plain_numpy_sigma_clip():
     # The kernel clips rows given as distinct values with counts (a band around the
     # median, merged distances); against numpy's median/mean/std applied literally to

@@ -775,6 +775,13 @@ def test_coded_crop_of_stills_and_none_where_no_table():
             expected = linearize(channel_values(fr, channel, region=(slice(2, 9), slice(1, 7))),
                                  TransferSpec("srgb"), channel=channel)
             np.testing.assert_array_equal(coded.values(), expected)
+            # Lazy: the channel read in place from the interleaved image.
+            lazy = code_values(fr, channel, "srgb", region=(slice(2, 9), slice(1, 7)),
+                               lazy=True)
+            assert lazy.source is not None and lazy.shape == (7, 6)
+            np.testing.assert_array_equal(lazy.codes_at(np.arange(0, 42, 5)),
+                                          coded.codes.reshape(-1)[::5])
+            np.testing.assert_array_equal(lazy.values(), expected)
     fr = Frame(index=0, time_s=0.0, data=rgb.astype(np.float32), max_code=1.0, source="s",
                kind="still", bit_depth=32)
     assert code_values(fr, "red", "srgb") is None
