@@ -1061,6 +1061,9 @@ QC_FLAGS: dict[str, str] = {
                "projection): the camera was out of focus or moved within an exposure. "
                "Refocus and hold the camera still.",
     "low_snr": "A spot's signal-to-noise ratio is below the limit; its reading is noisy.",
+    "pulse_not_ended": "The recording ended while a spot still glowed at more than a tenth "
+                       "of its peak: its integral misses the end of the pulse and reads "
+                       "low. Record until the emission has faded.",
     "no_pulse": "No ECL pulse was detected on a spot (expected for blanks and zero "
                 "standards).",
 }
@@ -1133,7 +1136,7 @@ _RESPONSE_SE = {"integral": "integral_se", "peak": "peak_se"}
 MARKER_NAME = ".ecl-quant-batch"
 RECORDINGS_DIR = "recordings"
 _FLAG_ORDER = ("saturated", "drifted", "exposure_changed", "ambient_light", "blurred",
-               "low_snr", "no_pulse")
+               "pulse_not_ended", "low_snr", "no_pulse")
 
 
 @dataclass(frozen=True)

@@ -84,6 +84,11 @@ class CurveSettings:
         Savitzky-Golay polynomial order.
     min_snr : float
         ``low_snr`` below this integral SNR.
+    end_fraction : float
+        ``pulse_not_ended`` when the smoothed signal at the last frame is still above
+        this fraction of the peak height (the integral then misses the rest of the
+        pulse: for a first-order decay the missing area is that fraction of the peak
+        times the decay time).
     """
 
     baseline_end_s: float | None = None
@@ -92,6 +97,7 @@ class CurveSettings:
     smooth_frames: int | None = None
     smooth_order: int = 2
     min_snr: float = 3.0
+    end_fraction: float = 0.1
 
 
 @dataclass(frozen=True)
@@ -478,6 +484,9 @@ def curve_metrics(time_s: ArrayLike, signal: ArrayLike, signal_se: ArrayLike, *,
         flags.append("no_pulse")
     if not (snr >= settings.min_snr):
         flags.append("low_snr")
+    height = float(sm[k_pk]) - b
+    if math.isfinite(onset) and height > 0 and float(sm[-1]) - b > settings.end_fraction * height:
+        flags.append("pulse_not_ended")
     saturated = n_sat > 0
     return CurveMetrics(
         baseline=b, baseline_sd=sd, baseline_frames=int(mask.sum()),

@@ -167,6 +167,27 @@ def test_curve_metrics_of_a_clean_pulse():
     assert auto.baseline_frames > 30 and auto.integral == pytest.approx(m.integral, rel=0.02)
 
 
+def test_a_recording_cut_before_the_pulse_ends_is_flagged():
+    # Cut at 1.5 decay times after the peak the signal is ~27 % of the peak; the integral
+    # then misses a known part of the pulse (analytic antiderivative of the simulated
+    # first-order rise/decay shape). The full recording (to ~7 decay times) is not
+    # flagged.
+    from ecl_quant.simulate import ecl_pulse_antiderivative
+
+    t, y, se = _pulse_curve()
+    t_peak = 2.0 + ecl_pulse_peak_delay(0.25, 0.9)
+    cut = t <= t_peak + 1.5 * 0.9
+    m = curve_metrics(t[cut], y[cut], se[cut], settings=CurveSettings(baseline_end_s=1.9))
+    assert "pulse_not_ended" in m.flags
+    full = curve_metrics(t, y, se, settings=CurveSettings(baseline_end_s=1.9))
+    assert "pulse_not_ended" not in full.flags
+    shape = dict(onset_s=2.0, rise_s=0.25, decay_s=0.9)
+    missing = 1 - (ecl_pulse_antiderivative(t[cut][-1], **shape)
+                   / ecl_pulse_antiderivative(t[-1], **shape))
+    assert missing > 0.15  # what the flag warns about
+    assert m.integral == pytest.approx(full.integral * (1 - missing), rel=0.05)
+
+
 def test_saturated_frames_make_the_integral_invalid():
     t, y, se = _pulse_curve(seed=1)
     sat = np.zeros(t.size, int)
