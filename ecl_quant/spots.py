@@ -1246,6 +1246,119 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
         return out
 
     @plain
+    def box_sums_down2(src: Any, r: int) -> Any:
+        # box_down_twice of integer codes as exact int32 sums (not divided): the same
+        # running sums without rounding (src * (2 r + 1) ** 2 must fit in int32).
+        h, w = src.shape
+        tmp = np.empty((h, w), np.int32)
+        out = np.empty((h, w), np.int32)
+        acc = np.zeros(w, np.int32)
+        for t in range(-r, r + 1):
+            row = src[-t - 1 if t < 0 else t]
+            for j in range(w):
+                acc[j] += np.int32(row[j])
+        for i in range(h):
+            o = tmp[i]
+            for j in range(w):
+                o[j] = acc[j]
+            i_in = i + r + 1
+            i_out = i - r
+            if i_in >= h:
+                i_in = 2 * h - i_in - 1
+            if i_out < 0:
+                i_out = -i_out - 1
+            ra = src[i_in]
+            rb = src[i_out]
+            for j in range(w):
+                acc[j] += np.int32(ra[j]) - np.int32(rb[j])
+        acc[:] = 0
+        for t in range(-r, r + 1):
+            row = tmp[-t - 1 if t < 0 else t]
+            for j in range(w):
+                acc[j] += row[j]
+        for i in range(h):
+            o = out[i]
+            for j in range(w):
+                o[j] = acc[j]
+            i_in = i + r + 1
+            i_out = i - r
+            if i_in >= h:
+                i_in = 2 * h - i_in - 1
+            if i_out < 0:
+                i_out = -i_out - 1
+            ra = tmp[i_in]
+            rb = tmp[i_out]
+            for j in range(w):
+                acc[j] += ra[j] - rb[j]
+        return out
+
+    @plain
+    def highpass_sums_rest(sums_h: Any, med: Any, r: int, window: Any, scale: float) -> Any:
+        # highpass_rest for integer codes: sums_h are the exact horizontal box sums
+        # (box_sums_down2 of the transposed median, transposed back); the vertical sums
+        # are exact too, and the blur is their total times scale / (2 r + 1) ** 4,
+        # rounded once to float32 (the float kernels round after every pass).
+        h, w = med.shape
+        c = scale / (2 * r + 1) ** 4
+        sc = np.float32(scale)
+        tmp = np.empty((h, w), np.int32)
+        acc = np.zeros(w, np.int32)
+        for t in range(-r, r + 1):
+            row = sums_h[-t - 1 if t < 0 else t]
+            for j in range(w):
+                acc[j] += row[j]
+        for i in range(h):
+            o = tmp[i]
+            for j in range(w):
+                o[j] = acc[j]
+            i_in = i + r + 1
+            i_out = i - r
+            if i_in >= h:
+                i_in = 2 * h - i_in - 1
+            if i_out < 0:
+                i_out = -i_out - 1
+            ra = sums_h[i_in]
+            rb = sums_h[i_out]
+            for j in range(w):
+                acc[j] += ra[j] - rb[j]
+        out = np.empty((h, w), np.float32)
+        s1 = np.zeros(w)
+        s2 = np.zeros(w)
+        acc[:] = 0
+        for t in range(-r, r + 1):
+            row = tmp[-t - 1 if t < 0 else t]
+            for j in range(w):
+                acc[j] += row[j]
+        for i in range(h):
+            a = med[i]
+            o = out[i]
+            for j in range(w):
+                v = np.float32(a[j]) * sc - np.float32(acc[j] * c)
+                o[j] = v
+                s1[j] += v
+                s2[j] += np.float64(v) * v
+            i_in = i + r + 1
+            i_out = i - r
+            if i_in >= h:
+                i_in = 2 * h - i_in - 1
+            if i_out < 0:
+                i_out = -i_out - 1
+            ra = tmp[i_in]
+            rb = tmp[i_out]
+            for j in range(w):
+                acc[j] += ra[j] - rb[j]
+        t1 = s1.sum()
+        t2 = s2.sum()
+        if window.size:
+            m = np.float32(t1 / out.size)
+            for i in range(h):
+                o = out[i]
+                wr = window[i]
+                for j in range(w):
+                    o[j] = (o[j] - m) * wr[j]
+        return out, t1, t2
+
+    @plain
     def highpass_rest(low_h: Any, med: Any, r: int, window: Any, scale: float) -> Any:
         # med times scale (exact: scale 1 or 1/4) minus the vertical part of the double
         # box blur of low_h (its horizontal part already applied), with the sum and sum
@@ -1400,6 +1513,8 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
 
     return types.SimpleNamespace(halve_to_float=halve_to_float, quarter_sums=quarter_sums,
                                  box_down_twice=box_down_twice, highpass_rest=highpass_rest,
+                                 box_sums_down2=box_sums_down2,
+                                 highpass_sums_rest=highpass_sums_rest,
                                  spectral_lags=spectral_lags, cross_power=cross_power,
                                  peak_box=peak_box)
 
@@ -1885,9 +2000,13 @@ def _highpass_moments(small: NDArray[np.generic], highpass_px: float, *,
     med = cv2.medianBlur(small, 3) if min(small.shape) >= 3 else small
     if kern is not None and k // 2 < min(med.shape):
         r = k // 2
-        low_h = cv2.transpose(kern.box_down_twice(cv2.transpose(med), r, scale))
         win = _NO_WINDOW if window is None else np.asarray(window, dtype=np.float32)
-        out, s1, s2 = kern.highpass_rest(low_h, med, r, win, scale)
+        if med.dtype == np.uint16 and 65535 * k**4 < 2**31:  # exact int32 sums (k <= 13)
+            sums_h = cv2.transpose(kern.box_sums_down2(cv2.transpose(med), r))
+            out, s1, s2 = kern.highpass_sums_rest(sums_h, med, r, win, scale)
+        else:
+            low_h = cv2.transpose(kern.box_down_twice(cv2.transpose(med), r, scale))
+            out, s1, s2 = kern.highpass_rest(low_h, med, r, win, scale)
         mean = s1 / out.size
         return out, mean, math.sqrt(max(s2 / out.size - mean * mean, 0.0))
     low = cv2.blur(cv2.blur(med, (k, k), borderType=cv2.BORDER_REFLECT),
