@@ -766,3 +766,22 @@ def test_integer_sums_path_is_the_float_path(monkeypatch):
     ref, ref_mean, ref_sd = _highpass_moments(small, 6.0)
     np.testing.assert_allclose(got, (ref - np.float32(ref_mean)) * win, rtol=0, atol=5e-5)
     assert (mean, sd) == pytest.approx((ref_mean, ref_sd), rel=1e-6, abs=1e-6)
+
+
+def test_nearer_match_makes_the_blurred_copies_when_asked():
+    # Truth: a texture moved by whole pixels (np.roll: content displaced by (3, -2) px).
+    # The blurred copies are made only for this search (the per-frame refinement works
+    # on the spectra); a far phase-correlation peak gives way to the match within reach.
+    tracker = DriftTracker((120, 160), target_px=160)
+    assert tracker.factor == 1
+    img = 200.0 * _texture((120, 160), 2.0, 5)
+    tracker.update(img)
+    assert tracker._ref._blurred is None
+    moved = np.roll(img, (-2, 3), axis=(0, 1))
+    prep, _ = tracker._prepared(moved)
+    near = tracker._nearer_match(prep, 10.0, 10.0)
+    assert near == pytest.approx((3.0, -2.0), abs=0.1)
+    np.testing.assert_array_equal(tracker._ref.blurred,
+                                  cv2.GaussianBlur(tracker._ref.windowed, (0, 0), 1.0))
+    dx, dy, resp, measured = tracker.update(moved)
+    assert measured and (dx, dy) == pytest.approx((3.0, -2.0), abs=0.1)
