@@ -1943,7 +1943,8 @@ def estimate_shift(reference: NDArray[np.floating], image: NDArray[np.floating],
     the reference's spectrum, see :func:`_phase_correlate`). Its 5 x 5 centroid is
     biased towards whole pixels, so the sub-pixel part is then refined by a parabola
     through the cross-correlation of the (Gaussian-blurred, ``refine_blur`` px) images
-    at the 3 x 3 whole-pixel lags around the peak. Inputs are not modified.
+    at the 3 x 3 whole-pixel lags around the peak, evaluated from the cross spectrum
+    (:func:`_spectral_lags`). Inputs are not modified.
 
     Parameters
     ----------
@@ -2030,10 +2031,13 @@ class DriftTracker:
     (``highpass_px`` downscaled pixels) removes the smooth ambient leak, both fixed to the
     sensor, leaving what moves with the card (its texture and the spots). The result is
     phase-correlated with the reference (:func:`estimate_shift`; the reference's windowed
-    spectrum and blurred copy are kept until it is replaced, and a frame that becomes
-    the reference brings its own, so each frame costs one forward and one inverse DFT).
-    The first frame is the
-    initial reference; a later frame replaces it when its contrast (SD of the prepared
+    spectrum is kept until it is replaced, and a frame that becomes the reference brings
+    its own, so each frame costs one forward and one inverse DFT; the sub-pixel
+    refinement reads the cross spectrum). The per-frame passes run as compiled kernels
+    when numba is installed (see :func:`_drift_kernels`; loaded from numba's disk cache
+    at the first frame, about 0.3 s with numba's start), else as OpenCV / numpy code
+    with the same results within float32 rounding. The first frame is the initial
+    reference; a later frame replaces it when its contrast (SD of the prepared
     frame) exceeds ``refresh_ratio`` times the reference's, so the reference follows the
     spots as they light up. When the response is below ``min_response`` (nothing to
     lock on, e.g. a featureless card before the emission) the last accepted shift is
