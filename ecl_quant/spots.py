@@ -1149,6 +1149,13 @@ def _compile_drift_kernels() -> types.SimpleNamespace | None:
         import numba
     except ImportError:
         return None
+    try:
+        return _build_drift_kernels(numba)
+    except RuntimeError:  # e.g. no writable folder for numba's disk cache
+        return None
+
+
+def _build_drift_kernels(numba: Any) -> types.SimpleNamespace:
     # error_model "numpy": a division by zero gives inf / nan instead of raising, so
     # loops with a division are vectorised
     plain = numba.njit(cache=True, nogil=True, error_model="numpy")
