@@ -51,7 +51,8 @@ def kernels() -> types.SimpleNamespace | None:
             if _kernels is None and not _failed:
                 try:
                     _kernels = _compile()
-                except ImportError:
+                except (ImportError, RuntimeError):
+                    # no numba, or no writable folder for its disk cache
                     _failed = True
                     return None
     return _kernels

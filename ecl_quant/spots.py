@@ -30,7 +30,6 @@ from __future__ import annotations
 import copy
 import json
 import math
-import os
 import types
 import warnings
 from collections.abc import Iterable, Iterator, Mapping, Sequence
@@ -47,6 +46,7 @@ from numpy.typing import NDArray
 from scipy import fft as sp_fft
 from scipy import ndimage
 
+from . import _jit
 from ._io import write_json_atomic
 from .errors import InputFormatError, NoSpotsWarning, SpotError
 
@@ -1128,17 +1128,11 @@ def _interleaved_parent(plane: NDArray[np.generic]) -> tuple[NDArray[np.generic]
 _SERIAL_OUTPUT_PX = 1 << 16
 
 
-def _jit_wanted() -> bool:
-    """False when the environment variable ``ECL_QUANT_JIT`` is 0/false/no/off."""
-    value = os.environ.get("ECL_QUANT_JIT")
-    return value is None or value.strip().lower() not in ("0", "false", "no", "off")
-
-
 def _drift_kernels() -> types.SimpleNamespace | None:
     """The tracker's compiled kernels (numba), or None: disabled (``ECL_QUANT_JIT=0``)
     or numba not installed; then the OpenCV / numpy code runs, which the kernels
     reproduce (the tests compare both)."""
-    return _compile_drift_kernels() if _jit_wanted() else None
+    return _compile_drift_kernels() if _jit.enabled() else None
 
 
 @lru_cache(maxsize=1)
@@ -1748,15 +1742,6 @@ def _dft_tables(shape: tuple[int, int]) -> tuple[NDArray[np.float64], ...]:
     ax = 2.0 * np.pi * np.arange(cols) / cols
     ay = 2.0 * np.pi * np.arange(rows) / rows
     return np.cos(ax), np.sin(ax), np.cos(ay), np.sin(ay)
-
-
-def _refine_shift(a: NDArray[np.float32], b: NDArray[np.float32], dx: float, dy: float,
-                  blur: float) -> tuple[float, float]:
-    """Sub-pixel peak of the cross-correlation at the 3 x 3 integer lags around (dx, dy)."""
-    if blur > 0:
-        a = cv2.GaussianBlur(a, (0, 0), blur)
-        b = cv2.GaussianBlur(b, (0, 0), blur)
-    return _refine_blurred(a, b, dx, dy)
 
 
 _FLT_EPS = float(np.finfo(np.float32).eps)

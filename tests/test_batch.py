@@ -426,11 +426,13 @@ _OUTPUTS = ("measurements.csv", "results.csv", "qc.csv", "errors.csv")
 
 
 def _tiny(path: Path, conc: float, seed: int, encoding: str, **flaws) -> None:
+    # 25 frames at 8 fps: the pulse (peak at ~0.8 s) has decayed to ~3 % of its peak by
+    # the last frame (not flagged pulse_not_ended).
     amp = 0.01 + 0.02 * conc
     opts = {"size": (72, 96), **flaws}
     spec = SimulationSpec(n_rows=1, n_cols=3, radius_px=6.0, spacing_px=24.0,
                           amplitudes=(amp, amp, amp), n_frames=25, fps=8.0, onset_s=0.4,
-                          rise_s=0.3, decay_s=0.8, drift_px=0.3, n_hot_pixels=1,
+                          rise_s=0.3, decay_s=0.6, drift_px=0.3, n_hot_pixels=1,
                           encoding=encoding, crf=12, seed=seed, **opts)
     simulate_recording(path, spec)
 
