@@ -7,7 +7,7 @@ DEMO_OUT ?= demo-output
 
 .PHONY: install demo test bench validate fuzz clean
 
-$(STAMP): pyproject.toml
+$(STAMP): pyproject.toml setup.py $(wildcard ecl_quant/native/*.c ecl_quant/native/*.h)
 	@test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
 	$(PY) -m pip install --quiet -e '.[test,bench]'

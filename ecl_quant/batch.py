@@ -969,8 +969,7 @@ _WORKER_PRELOAD = ("ecl_quant.batch", "ecl_quant.measure", "ecl_quant.radiometry
                    "ecl_quant.calibration", "ecl_quant.report", "av", "PIL.Image",
                    "PIL.JpegImagePlugin", "PIL.PngImagePlugin", "scipy.ndimage",
                    "scipy.signal", "scipy.fft", "scipy.stats", "matplotlib.figure",
-                   "matplotlib.backends.backend_agg", "matplotlib.patches",
-                   "ecl_quant._kernels")
+                   "matplotlib.backends.backend_agg", "matplotlib.patches")
 
 
 def _worker_setup() -> None:

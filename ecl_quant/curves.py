@@ -1374,9 +1374,8 @@ class SpotIntegrator:
                   float(self.clip_sigma), vals)
         if source is not None:
             assert shifts is not None
-            chroma = source.luma if source.chroma is None else source.chroma
             out = kernels.spot_frame_planes(
-                source.luma, chroma, int(source.bounds[0]), int(source.bounds[2]),
+                source.luma, source.chroma, int(source.bounds[0]), int(source.bounds[2]),
                 shifts[0], shifts[1], runs, int(sy), int(sx), *common)
         else:
             # One compiled variant per code type, not per memory layout (a view of a
