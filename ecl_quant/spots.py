@@ -28,9 +28,9 @@ Proc. IEEE Int. Conf. Cybernetics and Society, 163.
 from __future__ import annotations
 
 import copy
+import ctypes
 import json
 import math
-import types
 import warnings
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -1128,396 +1128,201 @@ def _interleaved_parent(plane: NDArray[np.generic]) -> tuple[NDArray[np.generic]
 _SERIAL_OUTPUT_PX = 1 << 16
 
 
-def _drift_kernels() -> types.SimpleNamespace | None:
-    """The tracker's compiled kernels (numba), or None: disabled (``ECL_QUANT_JIT=0``)
-    or numba not installed; then the OpenCV / numpy code runs, which the kernels
+def _drift_kernels() -> _NativeDrift | None:
+    """The tracker's compiled kernels (C, ``ecl_quant/native/drift.c``, loaded with
+    ctypes), or None: disabled (``ECL_QUANT_JIT=0``), not built (no C compiler at
+    install) or older than drift.c; then the OpenCV / numpy code runs, which the kernels
     reproduce (the tests compare both)."""
-    return _compile_drift_kernels() if _jit.enabled() else None
-
-
-@lru_cache(maxsize=1)
-def _compile_drift_kernels() -> types.SimpleNamespace | None:
-    # numba is imported here, on first use (its import alone costs about half a second,
-    # which every command would pay at start); compiled code is cached on disk.
-    try:
-        import numba
-    except ImportError:
+    lib = _jit.native("drift")
+    if lib is None:
         return None
-    try:
-        return _build_drift_kernels(numba)
-    except RuntimeError:  # e.g. no writable folder for numba's disk cache
-        return None
+    kern = _native_drift.get(id(lib))
+    if kern is None or kern.lib is not lib:
+        kern = _native_drift[id(lib)] = _NativeDrift(lib)
+    return kern
 
 
-def _build_drift_kernels(numba: Any) -> types.SimpleNamespace:
-    # error_model "numpy": a division by zero gives inf / nan instead of raising, so
-    # loops with a division are vectorised
-    plain = numba.njit(cache=True, nogil=True, error_model="numpy")
+_native_drift: dict[int, _NativeDrift] = {}
 
-    @plain
-    def halve_to_float(src: Any, out: Any) -> Any:
-        # 2 x 2 block means of an integer plane as float32: (a + b + c + d) * 0.25, as
-        # cv2.resize INTER_AREA computes it on the float32 copy (exact below 2 ** 22).
+_C_KIND = {np.dtype(np.float32): 0, np.dtype(np.uint8): 1, np.dtype(np.uint16): 2}
+
+
+def _addr(a: NDArray[Any] | None) -> int | None:
+    """Address of an array's first element for ctypes (None: a NULL pointer)."""
+    return None if a is None else a.ctypes.data  # type: ignore[no-any-return]
+
+
+def _c_check(status: int) -> None:
+    if status == -1:
+        raise MemoryError("drift kernel: out of memory")
+    if status != 0:  # pragma: no cover - a sample type the callers never pass
+        raise TypeError(f"drift kernel: unsupported sample type (status {status})")
+
+
+class _NativeDrift:
+    """The C drift kernels with numpy arrays in and out. Each method does what its
+    OpenCV / numpy counterpart in this module does, in the same order of float32 and
+    float64 operations (see drift.c); inputs are not modified."""
+
+    def __init__(self, lib: ctypes.CDLL) -> None:
+        self.lib = lib
+        P, I, D = ctypes.c_void_p, ctypes.c_int64, ctypes.c_double
+        for name, args, res in (
+                ("halve_to_float", [P, I, I, I, I, P], ctypes.c_int),
+                ("quarter_sums", [P, I, I, I, I, P], ctypes.c_int),
+                ("box_down_twice", [P, I, I, I, I, D, P], ctypes.c_int),
+                ("box_sums_down2", [P, I, I, I, P], ctypes.c_int),
+                ("highpass_rest", [P, P, I, I, I, I, P, D, P, P], ctypes.c_int),
+                ("highpass_sums_rest", [P, P, I, I, I, P, D, P, P], ctypes.c_int),
+                ("cross_power", [P, P, I, D, P, P], None),
+                ("peak_box", [P, I, I, I, I, P], None),
+                ("spectral_lags", [P, I, I, P, P, I, I, P, P, I, P, P, I, P], ctypes.c_int)):
+            fn = getattr(lib, "ecl_drift_" + name)
+            fn.argtypes, fn.restype = args, res
+            setattr(self, "_" + name, fn)
+
+    @staticmethod
+    def _rows(src: NDArray[np.generic]) -> NDArray[np.generic]:
+        # contiguous columns, rows at any positive stride
+        if src.strides[1] != src.itemsize or src.strides[0] < src.shape[1] * src.itemsize:
+            return np.ascontiguousarray(src)
+        return src
+
+    @staticmethod
+    def _fits(src: NDArray[np.generic], out: NDArray[np.generic], f: int) -> None:
+        if (src.shape[0] < f * out.shape[0] or src.shape[1] < f * out.shape[1]
+                or not out.flags.c_contiguous):
+            raise ValueError(f"a contiguous output of {out.shape} needs {f} x as many "
+                             f"input rows and columns, got {src.shape}")
+
+    def halve_to_float(self, src: NDArray[np.generic], out: NDArray[np.float32]
+                       ) -> NDArray[np.float32]:
+        """2 x 2 block means of an integer plane (uint8 / uint16) into ``out`` (float32,
+        contiguous): cv2.resize INTER_AREA of the float32 copy."""
+        src = self._rows(src)
         oh, ow = out.shape
-        for i in range(oh):
-            r0 = src[2 * i]
-            r1 = src[2 * i + 1]
-            for j in range(ow):
-                s = (np.float32(r0[2 * j]) + np.float32(r0[2 * j + 1])
-                     + np.float32(r1[2 * j]) + np.float32(r1[2 * j + 1]))
-                out[i, j] = s * np.float32(0.25)
+        self._fits(src, out, 2)
+        _c_check(self._halve_to_float(src.ctypes.data, _C_KIND[src.dtype], src.strides[0],
+                                      oh, ow, out.ctypes.data))
         return out
 
-    @plain
-    def quarter_sums(src: Any, out: Any, v0: Any, v1: Any, t: Any) -> Any:
-        # Two 2 x 2 steps of an integer plane in one pass: the first rounded half up to
-        # a whole code ((a + b + c + d + 2) >> 2, cv2.resize INTER_AREA on integers),
-        # the second as the sum of the four (4 times the exact mean). out, v0, v1 (4 ow)
-        # and t (2 ow) are of an integer type wide enough for sums of four codes.
+    def quarter_sums(self, src: NDArray[np.generic], out: NDArray[np.generic]
+                     ) -> NDArray[np.generic]:
+        """Two 2 x 2 steps of an integer plane: the first rounded to a whole code, the
+        second as the sum of four (``out``: uint16 for uint8 codes, uint32 for uint16)."""
+        src = self._rows(src)
         oh, ow = out.shape
-        w = 4 * ow
-        for i in range(oh):
-            r0 = src[4 * i]
-            r1 = src[4 * i + 1]
-            r2 = src[4 * i + 2]
-            r3 = src[4 * i + 3]
-            for j in range(w):
-                v0[j] = r0[j] + r1[j]
-                v1[j] = r2[j] + r3[j]
-            for j in range(2 * ow):
-                t[j] = (((v0[2 * j] + v0[2 * j + 1] + 2) >> 2)
-                        + ((v1[2 * j] + v1[2 * j + 1] + 2) >> 2))
-            o = out[i]
-            for m in range(ow):
-                o[m] = t[2 * m] + t[2 * m + 1]
+        self._fits(src, out, 4)
+        want = np.uint16 if src.dtype == np.uint8 else np.uint32
+        if out.dtype != want or not out.flags.c_contiguous:
+            raise TypeError("quarter_sums: out must be a contiguous %s array"
+                            % np.dtype(want).name)
+        _c_check(self._quarter_sums(src.ctypes.data, _C_KIND[src.dtype], src.strides[0],
+                                    oh, ow, out.ctypes.data))
         return out
 
-    # (No kernel calls another: numba's disk cache misses for a kernel that calls one
-    # made in the same closure, and it would compile again in every process.)
-
-    @plain
-    def box_down_twice(src: Any, r: int, scale: float) -> Any:
-        # Twice the mean over rows i - r .. i + r (BORDER_REFLECT, r < rows) of src
-        # times scale, as float32: running sums in float64 per column, times
-        # 1 / (2 r + 1), as cv2.blur (vectorised over each row). The two passes are
-        # written out (src may be uint16, the intermediate is float32).
+    def box_down_twice(self, src: NDArray[np.generic], r: int, scale: float
+                       ) -> NDArray[np.float32]:
+        """Twice the mean over rows i - r .. i + r (BORDER_REFLECT) of src (float32 or
+        uint16) times scale: cv2.blur with a (1, 2 r + 1) kernel, twice."""
+        src = np.ascontiguousarray(src)
         h, w = src.shape
-        tmp = np.empty(src.shape, np.float32)
-        out = np.empty(src.shape, np.float32)
-        acc = np.zeros(w)
-        inv = scale / (2 * r + 1)
-        for t in range(-r, r + 1):
-            row = src[-t - 1 if t < 0 else t]
-            for j in range(w):
-                acc[j] += row[j]
-        for i in range(h):
-            o = tmp[i]
-            for j in range(w):
-                o[j] = acc[j] * inv
-            i_in = i + r + 1
-            i_out = i - r
-            if i_in >= h:
-                i_in = 2 * h - i_in - 1
-            if i_out < 0:
-                i_out = -i_out - 1
-            ra = src[i_in]
-            rb = src[i_out]
-            for j in range(w):
-                acc[j] += np.float64(ra[j]) - np.float64(rb[j])
-        acc[:] = 0.0
-        inv = 1.0 / (2 * r + 1)
-        for t in range(-r, r + 1):
-            row = tmp[-t - 1 if t < 0 else t]
-            for j in range(w):
-                acc[j] += row[j]
-        for i in range(h):
-            o = out[i]
-            for j in range(w):
-                o[j] = acc[j] * inv
-            i_in = i + r + 1
-            i_out = i - r
-            if i_in >= h:
-                i_in = 2 * h - i_in - 1
-            if i_out < 0:
-                i_out = -i_out - 1
-            ra = tmp[i_in]
-            rb = tmp[i_out]
-            for j in range(w):
-                acc[j] += np.float64(ra[j]) - np.float64(rb[j])
-        return out
-
-    @plain
-    def box_sums_down2(src: Any, r: int) -> Any:
-        # box_down_twice of integer codes as exact int32 sums (not divided): the same
-        # running sums without rounding (src * (2 r + 1) ** 2 must fit in int32).
-        h, w = src.shape
-        tmp = np.empty((h, w), np.int32)
-        out = np.empty((h, w), np.int32)
-        acc = np.zeros(w, np.int32)
-        for t in range(-r, r + 1):
-            row = src[-t - 1 if t < 0 else t]
-            for j in range(w):
-                acc[j] += np.int32(row[j])
-        for i in range(h):
-            o = tmp[i]
-            for j in range(w):
-                o[j] = acc[j]
-            i_in = i + r + 1
-            i_out = i - r
-            if i_in >= h:
-                i_in = 2 * h - i_in - 1
-            if i_out < 0:
-                i_out = -i_out - 1
-            ra = src[i_in]
-            rb = src[i_out]
-            for j in range(w):
-                acc[j] += np.int32(ra[j]) - np.int32(rb[j])
-        acc[:] = 0
-        for t in range(-r, r + 1):
-            row = tmp[-t - 1 if t < 0 else t]
-            for j in range(w):
-                acc[j] += row[j]
-        for i in range(h):
-            o = out[i]
-            for j in range(w):
-                o[j] = acc[j]
-            i_in = i + r + 1
-            i_out = i - r
-            if i_in >= h:
-                i_in = 2 * h - i_in - 1
-            if i_out < 0:
-                i_out = -i_out - 1
-            ra = tmp[i_in]
-            rb = tmp[i_out]
-            for j in range(w):
-                acc[j] += ra[j] - rb[j]
-        return out
-
-    @plain
-    def highpass_sums_rest(sums_h: Any, med: Any, r: int, window: Any, scale: float) -> Any:
-        # highpass_rest for integer codes: sums_h are the exact horizontal box sums
-        # (box_sums_down2 of the transposed median, transposed back); the vertical sums
-        # are exact too, and the blur is their total times scale / (2 r + 1) ** 4,
-        # rounded once to float32 (the float kernels round after every pass).
-        h, w = med.shape
-        c = scale / (2 * r + 1) ** 4
-        sc = np.float32(scale)
-        tmp = np.empty((h, w), np.int32)
-        acc = np.zeros(w, np.int32)
-        for t in range(-r, r + 1):
-            row = sums_h[-t - 1 if t < 0 else t]
-            for j in range(w):
-                acc[j] += row[j]
-        for i in range(h):
-            o = tmp[i]
-            for j in range(w):
-                o[j] = acc[j]
-            i_in = i + r + 1
-            i_out = i - r
-            if i_in >= h:
-                i_in = 2 * h - i_in - 1
-            if i_out < 0:
-                i_out = -i_out - 1
-            ra = sums_h[i_in]
-            rb = sums_h[i_out]
-            for j in range(w):
-                acc[j] += ra[j] - rb[j]
         out = np.empty((h, w), np.float32)
-        s1 = np.zeros(w)
-        s2 = np.zeros(w)
-        acc[:] = 0
-        for t in range(-r, r + 1):
-            row = tmp[-t - 1 if t < 0 else t]
-            for j in range(w):
-                acc[j] += row[j]
-        for i in range(h):
-            a = med[i]
-            o = out[i]
-            for j in range(w):
-                v = np.float32(a[j]) * sc - np.float32(acc[j] * c)
-                o[j] = v
-                s1[j] += v
-                s2[j] += np.float64(v) * v
-            i_in = i + r + 1
-            i_out = i - r
-            if i_in >= h:
-                i_in = 2 * h - i_in - 1
-            if i_out < 0:
-                i_out = -i_out - 1
-            ra = tmp[i_in]
-            rb = tmp[i_out]
-            for j in range(w):
-                acc[j] += ra[j] - rb[j]
-        t1 = s1.sum()
-        t2 = s2.sum()
-        if window.size:
-            m = np.float32(t1 / out.size)
-            for i in range(h):
-                o = out[i]
-                wr = window[i]
-                for j in range(w):
-                    o[j] = (o[j] - m) * wr[j]
-        return out, t1, t2
+        _c_check(self._box_down_twice(src.ctypes.data, _C_KIND[src.dtype], h, w, int(r),
+                                      float(scale), out.ctypes.data))
+        return out
 
-    @plain
-    def highpass_rest(low_h: Any, med: Any, r: int, window: Any, scale: float) -> Any:
-        # med times scale (exact: scale 1 or 1/4) minus the vertical part of the double
-        # box blur of low_h (its horizontal part already applied), with the sum and sum
-        # of squares of the result; with a window (not empty), (result - float32(mean))
-        # * window instead, all in float32.
+    def box_sums_down2(self, src: NDArray[np.uint16], r: int) -> NDArray[np.int32]:
+        """:meth:`box_down_twice` of uint16 codes as exact int32 sums (not divided)."""
+        src = np.ascontiguousarray(src, dtype=np.uint16)
+        h, w = src.shape
+        out = np.empty((h, w), np.int32)
+        _c_check(self._box_sums_down2(src.ctypes.data, h, w, int(r), out.ctypes.data))
+        return out
+
+    def highpass_rest(self, low_h: NDArray[np.float32], med: NDArray[np.generic], r: int,
+                      window: NDArray[np.float32], scale: float
+                      ) -> tuple[NDArray[np.float32], float, float]:
+        """med times scale minus the vertical part of the double box blur of low_h, and
+        the sum and sum of squares of the result; with a (non-empty) window, (result -
+        float32(mean)) * window instead."""
+        low_h = np.ascontiguousarray(low_h, dtype=np.float32)
+        med = np.ascontiguousarray(med)
         h, w = med.shape
-        inv = 1.0 / (2 * r + 1)
-        sc = np.float32(scale)
-        tmp = np.empty(med.shape, np.float32)
-        acc = np.zeros(w)
-        for t in range(-r, r + 1):  # first pass, as box_down_twice
-            row = low_h[-t - 1 if t < 0 else t]
-            for j in range(w):
-                acc[j] += row[j]
-        for i in range(h):
-            o = tmp[i]
-            for j in range(w):
-                o[j] = acc[j] * inv
-            i_in = i + r + 1
-            i_out = i - r
-            if i_in >= h:
-                i_in = 2 * h - i_in - 1
-            if i_out < 0:
-                i_out = -i_out - 1
-            ra = low_h[i_in]
-            rb = low_h[i_out]
-            for j in range(w):
-                acc[j] += np.float64(ra[j]) - np.float64(rb[j])
-        out = np.empty(med.shape, np.float32)
-        s1 = np.zeros(w)
-        s2 = np.zeros(w)
-        # the second pass, each blurred value (float32) subtracted at once
-        acc[:] = 0.0
-        for t in range(-r, r + 1):
-            row = tmp[-t - 1 if t < 0 else t]
-            for j in range(w):
-                acc[j] += row[j]
-        for i in range(h):
-            a = med[i]
-            o = out[i]
-            for j in range(w):
-                v = np.float32(a[j]) * sc - np.float32(acc[j] * inv)
-                o[j] = v
-                s1[j] += v
-                s2[j] += np.float64(v) * v
-            i_in = i + r + 1
-            i_out = i - r
-            if i_in >= h:
-                i_in = 2 * h - i_in - 1
-            if i_out < 0:
-                i_out = -i_out - 1
-            ra = tmp[i_in]
-            rb = tmp[i_out]
-            for j in range(w):
-                acc[j] += np.float64(ra[j]) - np.float64(rb[j])
-        t1 = s1.sum()
-        t2 = s2.sum()
-        if window.size:
-            m = np.float32(t1 / out.size)
-            for i in range(h):
-                o = out[i]
-                wr = window[i]
-                for j in range(w):
-                    o[j] = (o[j] - m) * wr[j]
-        return out, t1, t2
+        win = self._window(window, (h, w))
+        out = np.empty((h, w), np.float32)
+        mom = np.empty(2)
+        _c_check(self._highpass_rest(low_h.ctypes.data, med.ctypes.data, _C_KIND[med.dtype],
+                                     h, w, int(r), _addr(win), float(scale), out.ctypes.data,
+                                     mom.ctypes.data))
+        return out, float(mom[0]), float(mom[1])
 
-    @numba.njit(cache=True, nogil=True, error_model="numpy",
-                fastmath={"reassoc", "nsz", "contract"})
-    def spectral_lags(cross: Any, wy: Any, wx: Any, ix: int, iy: int, cos_x: Any,
-                      sin_x: Any, cos_y: Any, sin_y: Any) -> Any:
-        # The sums of _spectral_lags: cross is the float32 view (re, im interleaved) of
-        # the complex64 cross spectrum, wy, wx the weights of its rows and columns; the
-        # tables hold cos / sin(2 pi n / N). Sums along a row in float32 (vectorised, in
-        # any order), over rows in float64.
-        h = wy.size
-        wc = wx.size
-        rows = cos_y.size
-        cols = cos_x.size
-        cx = np.empty((3, wc), np.float32)
-        sx = np.empty((3, wc), np.float32)
-        for d in range(3):
-            step = (ix + d - 1) % cols
-            for k in range(wc):
-                t = (k * step) % cols
-                cx[d, k] = cos_x[t] * wx[k]
-                sx[d, k] = sin_x[t] * wx[k]
-        re = np.empty(wc, np.float32)
-        im = np.empty(wc, np.float32)
-        out = np.zeros((3, 3))
-        for ky in range(h):
-            row = cross[ky]
-            for k in range(wc):
-                re[k] = row[2 * k]
-                im[k] = row[2 * k + 1]
-            for d in range(3):
-                rr = np.float32(0.0)
-                ii = np.float32(0.0)
-                c = cx[d]
-                s = sx[d]
-                for k in range(wc):
-                    rr += re[k] * c[k] - im[k] * s[k]
-                    ii += re[k] * s[k] + im[k] * c[k]
-                for e in range(3):
-                    t = (ky * ((iy + e - 1) % rows)) % rows
-                    out[e, d] += wy[ky] * (np.float64(rr) * cos_y[t] - np.float64(ii) * sin_y[t])
-        return out / (rows * cols)
+    def highpass_sums_rest(self, sums_h: NDArray[np.int32], med: NDArray[np.uint16], r: int,
+                           window: NDArray[np.float32], scale: float
+                           ) -> tuple[NDArray[np.float32], float, float]:
+        """:meth:`highpass_rest` for uint16 codes from the exact horizontal box sums."""
+        sums_h = np.ascontiguousarray(sums_h, dtype=np.int32)
+        med = np.ascontiguousarray(med, dtype=np.uint16)
+        h, w = med.shape
+        win = self._window(window, (h, w))
+        out = np.empty((h, w), np.float32)
+        mom = np.empty(2)
+        _c_check(self._highpass_sums_rest(sums_h.ctypes.data, med.ctypes.data, h, w, int(r),
+                                          _addr(win), float(scale), out.ctypes.data,
+                                          mom.ctypes.data))
+        return out, float(mom[0]), float(mom[1])
 
-    @plain
-    def cross_power(spec: Any, ref: Any, eps: float) -> Any:
-        # spec * conj(ref) and its normalised form P |P| / (|P|^2 + eps), float32 views
-        # (re, im interleaved) of complex64 spectra, the float32 arithmetic of numpy.
-        h, w2 = spec.shape
+    @staticmethod
+    def _window(window: NDArray[np.float32], shape: tuple[int, int]
+                ) -> NDArray[np.float32] | None:
+        if window.size == 0:
+            return None
+        if window.shape != shape:
+            raise ValueError(f"window of shape {window.shape} for an image of {shape}")
+        return np.ascontiguousarray(window, dtype=np.float32)
+
+    def cross_power(self, spec: NDArray[np.float32], ref: NDArray[np.float32], eps: float
+                    ) -> tuple[NDArray[np.float32], NDArray[np.float32]]:
+        """spec * conj(ref) and P |P| / (|P|^2 + eps): float32 views (re, im
+        interleaved) of complex64 spectra of one shape, numpy's float32 arithmetic."""
+        spec = np.ascontiguousarray(spec, dtype=np.float32)
+        ref = np.ascontiguousarray(ref, dtype=np.float32)
+        if spec.shape != ref.shape or spec.size % 2:
+            raise ValueError("cross_power: spectra of different shapes")
         cross = np.empty_like(spec)
         norm = np.empty_like(spec)
-        e = np.float32(eps)
-        for i in range(h):
-            a = spec[i]
-            b = ref[i]
-            x = cross[i]
-            y = norm[i]
-            for k in range(w2 // 2):
-                ar = a[2 * k]
-                ai = a[2 * k + 1]
-                br = b[2 * k]
-                bi = -b[2 * k + 1]
-                re = ar * br - ai * bi
-                im = ar * bi + ai * br
-                x[2 * k] = re
-                x[2 * k + 1] = im
-                m = np.sqrt(re * re + im * im)
-                f = m / (m * m + e)
-                y[2 * k] = re * f
-                y[2 * k + 1] = im * f
+        self._cross_power(spec.ctypes.data, ref.ctypes.data, spec.size // 2, float(eps),
+                          cross.ctypes.data, norm.ctypes.data)
         return cross, norm
 
-    @plain
-    def peak_box(c: Any, py: int, px: int) -> Any:
-        # Sum of the 5 x 5 samples around (py, px) of a periodic surface, and its first
-        # moments along the rows and the columns (offsets -2 .. 2), in float64.
+    def peak_box(self, c: NDArray[np.float32], py: int, px: int) -> tuple[float, float, float]:
+        """Sum of the 5 x 5 samples around (py, px) of a periodic surface (float32) and
+        its first moments along the rows and the columns, in float64."""
+        c = np.ascontiguousarray(c, dtype=np.float32)
         rows, cols = c.shape
-        total = 0.0
-        my = 0.0
-        mx = 0.0
-        for dy in range(-2, 3):
-            row = c[(py + dy) % rows]
-            for dx in range(-2, 3):
-                v = np.float64(row[(px + dx) % cols])
-                total += v
-                my += dy * v
-                mx += dx * v
-        return total, my, mx
+        out = np.empty(3)
+        self._peak_box(c.ctypes.data, rows, cols, int(py), int(px), out.ctypes.data)
+        return float(out[0]), float(out[1]), float(out[2])
 
-    return types.SimpleNamespace(halve_to_float=halve_to_float, quarter_sums=quarter_sums,
-                                 box_down_twice=box_down_twice, highpass_rest=highpass_rest,
-                                 box_sums_down2=box_sums_down2,
-                                 highpass_sums_rest=highpass_sums_rest,
-                                 spectral_lags=spectral_lags, cross_power=cross_power,
-                                 peak_box=peak_box)
+    def spectral_lags(self, cross: NDArray[np.float32], wy: NDArray[np.float64],
+                      wx: NDArray[np.float64], ix: int, iy: int, cos_x: NDArray[np.float64],
+                      sin_x: NDArray[np.float64], cos_y: NDArray[np.float64],
+                      sin_y: NDArray[np.float64]) -> NDArray[np.float64]:
+        """The nine sums of :func:`_spectral_lags` from the float32 view of the cross
+        spectrum (rows, 2 (cols // 2 + 1)), the weights and the cos / sin tables."""
+        cross = np.ascontiguousarray(cross, dtype=np.float32)
+        h, wc = wy.size, wx.size
+        if cross.shape != (h, 2 * wc):
+            raise ValueError("spectral_lags: cross spectrum and weights do not match")
+        arrays = [np.ascontiguousarray(a, dtype=np.float64)
+                  for a in (wy, wx, cos_x, sin_x, cos_y, sin_y)]
+        wy, wx, cos_x, sin_x, cos_y, sin_y = arrays
+        out = np.empty((3, 3))
+        _c_check(self._spectral_lags(cross.ctypes.data, h, wc, wy.ctypes.data, wx.ctypes.data,
+                                     int(ix), int(iy), cos_x.ctypes.data, sin_x.ctypes.data,
+                                     cos_x.size, cos_y.ctypes.data, sin_y.ctypes.data,
+                                     cos_y.size, out.ctypes.data))
+        return out
 
 
 def _halve(img: NDArray[np.generic], channel: int | None = None) -> NDArray[np.generic]:
@@ -1600,8 +1405,7 @@ def _downscale_scaled(plane: NDArray[np.generic], factor: int
     if kern is not None and n_int:  # the last rounded and the first float step, one pass
         oh, ow = src.shape[0] // 4, src.shape[1] // 4
         acc = np.uint16 if src.dtype == np.uint8 else np.uint32
-        sums = kern.quarter_sums(src, np.empty((oh, ow), acc), np.empty(4 * ow, acc),
-                                 np.empty(4 * ow, acc), np.empty(2 * ow, acc))
+        sums = kern.quarter_sums(src, np.empty((oh, ow), acc))
         if n_float == 1 and rest == 1 and sums.dtype == np.uint16:
             return sums, 0.25
         small = np.multiply(sums, np.float32(0.25), dtype=np.float32)
@@ -2025,10 +1829,10 @@ class DriftTracker:
     phase-correlated with the reference (:func:`estimate_shift`; the reference's windowed
     spectrum is kept until it is replaced, and a frame that becomes the reference brings
     its own, so each frame costs one forward and one inverse DFT; the sub-pixel
-    refinement reads the cross spectrum). The per-frame passes run as compiled kernels
-    when numba is installed (see :func:`_drift_kernels`; loaded from numba's disk cache
-    at the first frame, about 0.3 s with numba's start), else as OpenCV / numpy code
-    with the same results within float32 rounding. The first frame is the initial
+    refinement reads the cross spectrum). The per-frame passes run as compiled C
+    kernels when they were built at install (see :func:`_drift_kernels`; loaded with
+    ctypes, no start-up cost), else as OpenCV / numpy code with the same results within
+    float32 rounding. The first frame is the initial
     reference; a later frame replaces it when its contrast (SD of the prepared
     frame) exceeds ``refresh_ratio`` times the reference's, so the reference follows the
     spots as they light up. When the response is below ``min_response`` (nothing to
