@@ -356,6 +356,16 @@ def _numpy_sigma_clip(x, k=3.0):
     return med, x[keep].mean(), x[keep].std(ddof=1), int(keep.sum())
 
 
+def _assert_numpy_clip(rows, med, mean, sd, cnt):
+    """Clipped statistics of each row equal the plain numpy reference's."""
+    for k, v in enumerate(rows):
+        m2, mu2, s2, c2 = _numpy_sigma_clip(v)
+        assert med[k] == pytest.approx(m2, rel=1e-12, abs=1e-15)
+        assert mean[k] == pytest.approx(mu2, rel=1e-9, abs=1e-15)
+        assert sd[k] == pytest.approx(s2, rel=1e-9, abs=1e-15)
+        assert cnt[k] == c2
+
+
 def test_clipped_rows_match_a_plain_numpy_sigma_clip():
     # Rows of 8-bit-like values (many ties) and heavy-tailed floats, against numpy's
     # median/mean/std applied literally.
@@ -370,13 +380,7 @@ def test_clipped_rows_match_a_plain_numpy_sigma_clip():
                 rows.append((np.round(rng.normal(50, 3, n)) / 255).astype(np.float32))
             else:
                 rows.append(rng.standard_cauchy(n).astype(np.float32))
-        med, mean, sd, cnt = _clipped_rows_sorted(rows, 3.0)
-        for k, v in enumerate(rows):
-            m2, mu2, s2, c2 = _numpy_sigma_clip(v)
-            assert med[k] == pytest.approx(m2, rel=1e-12, abs=1e-15)
-            assert mean[k] == pytest.approx(mu2, rel=1e-9, abs=1e-15)
-            assert sd[k] == pytest.approx(s2, rel=1e-9, abs=1e-15)
-            assert cnt[k] == c2
+        _assert_numpy_clip(rows, *_clipped_rows_sorted(rows, 3.0))
 
 
 def _coded_frame(rng, shape, *, bits=8, pair=False):
@@ -588,10 +592,4 @@ def test_compiled_clipping_matches_a_plain_numpy_sigma_clip():
         cc = np.zeros((len(rows), width.max()), np.int64)
         for k, (v, c) in enumerate(distinct):
             cv[k, :v.size], cc[k, :v.size] = v, c
-        med, mean, sd, cnt = kernels.clip_rows(cv, cc, width, 3.0)
-        for k, v in enumerate(rows):
-            m2, mu2, s2, c2 = _numpy_sigma_clip(v)
-            assert med[k] == pytest.approx(m2, rel=1e-12, abs=1e-15)
-            assert mean[k] == pytest.approx(mu2, rel=1e-9, abs=1e-15)
-            assert sd[k] == pytest.approx(s2, rel=1e-9, abs=1e-15)
-            assert cnt[k] == c2
+        _assert_numpy_clip(rows, *kernels.clip_rows(cv, cc, width, 3.0))
