@@ -31,7 +31,7 @@ from __future__ import annotations
 import math
 import re
 import warnings
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
@@ -71,9 +71,10 @@ DEFAULT_MAX_PIXELS = 100_000_000
 STILL_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff")
 RAW_SUFFIXES = (".dng",)
 VIDEO_SUFFIXES = (".mp4", ".mov", ".m4v", ".avi", ".mkv", ".webm", ".3gp")
-#: Stills and DNGs decoded ahead of the consumer on one background thread (Pillow,
-#: OpenCV and LibRaw release the GIL while they decode, so decoding the next file
-#: overlaps the processing of this one); 0 decodes in the consumer's thread.
+#: Frames decoded ahead of the consumer on one background thread (Pillow, OpenCV,
+#: LibRaw and FFmpeg release the GIL while they decode, so decoding the next frame
+#: overlaps the processing of this one; for video it keeps FFmpeg's decoder threads
+#: fed); 0 decodes in the consumer's thread.
 READ_AHEAD = 2
 #: FFmpeg decoder threading of videos: "AUTO" (frame and slice threads on every core) or
 #: "NONE" (one thread: the least CPU per frame, for processes that already fill the
@@ -623,6 +624,71 @@ def _decode_opened(opened: tuple[_StillHeader, Any]) -> NDArray[Any]:
     return arr
 
 
+def _warn_here(message: str, category: type[Warning]) -> None:
+    warnings.warn(message, category, stacklevel=3)
+
+
+def _decoded_ahead(make: Callable[[Callable[[str, type[Warning]], None]], Iterator[Any]],
+                   depth: int) -> Iterator[Any]:
+    """The items of the generator ``make(warn)``, produced on a background thread up to
+    ``depth`` items ahead of the consumer (video: FFmpeg's decoder threads then always
+    have packets to work on while the consumer measures the previous frame; PyAV
+    releases the GIL while it decodes).
+
+    Warnings the generator gives through ``warn`` are issued in the consumer's thread at
+    their place in the sequence (warning filters are process-wide state); an exception
+    is raised there after the items before it. Closing this generator early stops the
+    producer and waits for it, so the source is closed when this returns.
+    """
+    import queue
+    import threading
+
+    done = object()
+    q: queue.Queue[tuple[str, Any]] = queue.Queue(maxsize=max(1, depth))
+    stop = threading.Event()
+
+    def put(kind: str, value: Any) -> bool:
+        while not stop.is_set():
+            try:
+                q.put((kind, value), timeout=0.05)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def produce() -> None:
+        try:
+            gen = make(lambda message, category: put("warning", (message, category)))
+            try:
+                for item in gen:
+                    if not put("item", item):
+                        return
+            finally:
+                close = getattr(gen, "close", None)
+                if close is not None:
+                    close()
+            put("end", done)
+        except BaseException as err:  # handed to the consumer
+            put("error", err)
+
+    worker = threading.Thread(target=produce, name="ecl-quant-decode", daemon=True)
+    worker.start()
+    try:
+        while True:
+            kind, value = q.get()
+            if kind == "item":
+                yield value
+            elif kind == "warning":
+                warnings.warn(value[0], value[1], stacklevel=2)
+            elif kind == "error":
+                raise value
+            else:
+                return
+    finally:
+        stop.set()
+        worker.join()
+
+
 def _read_ahead(decode: Any, items: Sequence[Any], depth: int | None = None, *,
                 prepare: Any = None) -> Iterator[tuple[Any, Any]]:
     """``(item, decode(prepare(item)))`` in order, with up to ``depth`` decodes ahead.
@@ -805,6 +871,13 @@ class Recording:
 
     # -- video
     def _video_frames(self, *, key_only: bool = False) -> Iterator[Frame]:
+        if READ_AHEAD <= 0:
+            return self._decode_video(key_only=key_only, warn=_warn_here)
+        return _decoded_ahead(
+            lambda warn: self._decode_video(key_only=key_only, warn=warn), READ_AHEAD)
+
+    def _decode_video(self, *, key_only: bool,
+                      warn: Callable[[str, type[Warning]], None]) -> Iterator[Frame]:
         import av
 
         path = Path(self.path)
@@ -830,12 +903,11 @@ class Recording:
                     if not key_only and listed and listed - index > max(2, 0.01 * listed):
                         # A fast-start MP4 keeps its index at the front: cut short, it
                         # still opens and simply ends early.
-                        warnings.warn(
+                        warn(
                             f"{path}: the video ends after {index} of the {listed} frames "
                             "its index lists: the file was cut short (copy it again from "
                             "the phone); only the frames present are measured",
                             IncompleteRecordingWarning,
-                            stacklevel=2,
                         )
                     break
                 except av.FFmpegError as err:
@@ -848,11 +920,10 @@ class Recording:
                 if t is None:
                     rate = fallback_rate or 1.0
                     if not warned:
-                        warnings.warn(
+                        warn(
                             f"{path}: video frames carry no timestamps; assuming "
                             f"{rate:g} frames per second",
                             TimingWarning,
-                            stacklevel=2,
                         )
                         warned = True
                     t = index / rate

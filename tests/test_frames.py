@@ -655,6 +655,74 @@ def test_read_ahead_stops_cleanly_when_the_consumer_stops(tmp_path):
         assert not [f for f in open_files if f.startswith(str(tmp_path))]
 
 
+def test_video_decoded_ahead_equals_inline_decoding(tmp_path, monkeypatch):
+    # The video read-ahead thread must give PyAV's own frames (reference decoder), in
+    # order, with their timestamps; closing early must join the thread and close the
+    # container (threading docs: no lingering thread; proc(5) for open files).
+    import threading
+
+    from ecl_quant import frames as frames_mod
+
+    rng = np.random.default_rng(34)
+    planes = [(rng.integers(16, 235, (48, 64), np.uint8), np.full((24, 32), 128, np.uint8),
+               np.full((24, 32), 128, np.uint8)) for _ in range(20)]
+    path = tmp_path / "v.mp4"
+    write_yuv_video(path, planes, options={"crf": "0"})
+    rec = open_recording(path)
+    ahead = [(fr.time_s, fr.data.copy()) for fr in rec.frames()]
+    monkeypatch.setattr(frames_mod, "READ_AHEAD", 0)
+    inline = [(fr.time_s, fr.data.copy()) for fr in rec.frames()]
+    with av.open(str(path)) as c:
+        reference = [np.frombuffer(f.planes[0], np.uint8).reshape(
+            f.planes[0].height, f.planes[0].line_size)[:, :f.width].copy()
+            for f in c.decode(video=0)]  # PyAV's decoded Y' plane
+    assert len(ahead) == len(inline) == len(reference) == 20
+    for (ta, a), (tb, b), r in zip(ahead, inline, reference):
+        assert ta == tb
+        np.testing.assert_array_equal(a, b)
+        np.testing.assert_array_equal(a, r)
+    monkeypatch.setattr(frames_mod, "READ_AHEAD", 2)
+    gen = rec.frames()
+    next(gen)
+    gen.close()
+    assert not [t for t in threading.enumerate() if t.name == "ecl-quant-decode"]
+    fds = Path("/proc/self/fd")
+    if fds.is_dir():
+        links = []
+        for fd in fds.iterdir():
+            try:
+                links.append(os.readlink(fd))
+            except OSError:
+                continue
+        assert str(path) not in links
+
+
+def test_decoded_ahead_keeps_warnings_and_errors_in_place():
+    # Warnings given by the producer come out in the consumer's thread between the same
+    # items; an error after the items before it (common practice for producer/consumer
+    # pipelines, as without read-ahead).
+    import threading
+    import warnings as warnings_mod
+
+    from ecl_quant.frames import _decoded_ahead
+
+    def make(warn):
+        yield 1
+        warn("between 1 and 2", TimingWarning)
+        yield 2
+        raise InputFormatError("broken after 2", path="x")
+
+    seen = []
+    with pytest.raises(InputFormatError, match="broken after 2"):
+        with warnings_mod.catch_warnings(record=True) as caught:
+            warnings_mod.simplefilter("always")
+            for item in _decoded_ahead(make, 2):
+                seen.append((item, len(caught), threading.current_thread().name))
+    assert [(a, b) for a, b, _ in seen] == [(1, 0), (2, 1)]
+    assert str(caught[0].message) == "between 1 and 2" and caught[0].category is TimingWarning
+    assert seen[0][2] == threading.current_thread().name
+
+
 # ----------------------------------------------------------------------------- robustness
 
 from hypothesis import HealthCheck, given, settings  # noqa: E402
