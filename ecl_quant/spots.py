@@ -1148,8 +1148,15 @@ _C_KIND = {np.dtype(np.float32): 0, np.dtype(np.uint8): 1, np.dtype(np.uint16): 
 
 
 def _addr(a: NDArray[Any] | None) -> int | None:
-    """Address of an array's first element for ctypes (None: a NULL pointer)."""
-    return None if a is None else a.ctypes.data  # type: ignore[no-any-return]
+    """Address of an array's first element for ctypes (None: a NULL pointer). Through
+    the buffer protocol for a writable C-contiguous array (0.3 us; ``a.ctypes.data``
+    costs 1.2 us, and a frame passes a few dozen arrays), else ``a.ctypes.data``."""
+    if a is None:
+        return None
+    try:
+        return ctypes.addressof(ctypes.c_char.from_buffer(a))
+    except (TypeError, ValueError, BufferError):  # read-only, strided or empty
+        return a.ctypes.data  # type: ignore[no-any-return]
 
 
 def _c_check(status: int) -> None:
@@ -1174,7 +1181,7 @@ class _NativeDrift:
                 ("box_sums_down2", [P, I, I, I, P], ctypes.c_int),
                 ("highpass_rest", [P, P, I, I, I, I, P, D, P, P], ctypes.c_int),
                 ("highpass_sums_rest", [P, P, I, I, I, P, D, P, P], ctypes.c_int),
-                ("cross_power", [P, P, I, D, P, P], None),
+                ("cross_power", [P, P, I, D, P, P], ctypes.c_int),
                 ("peak_box", [P, I, I, I, I, P], None),
                 ("spectral_lags", [P, I, I, P, P, I, I, P, P, I, P, P, I, P], ctypes.c_int)):
             fn = getattr(lib, "ecl_drift_" + name)
@@ -1202,8 +1209,8 @@ class _NativeDrift:
         src = self._rows(src)
         oh, ow = out.shape
         self._fits(src, out, 2)
-        _c_check(self._halve_to_float(src.ctypes.data, _C_KIND[src.dtype], src.strides[0],
-                                      oh, ow, out.ctypes.data))
+        _c_check(self._halve_to_float(_addr(src), _C_KIND[src.dtype], src.strides[0],
+                                      oh, ow, _addr(out)))
         return out
 
     def quarter_sums(self, src: NDArray[np.generic], out: NDArray[np.generic]
@@ -1217,8 +1224,8 @@ class _NativeDrift:
         if out.dtype != want or not out.flags.c_contiguous:
             raise TypeError("quarter_sums: out must be a contiguous %s array"
                             % np.dtype(want).name)
-        _c_check(self._quarter_sums(src.ctypes.data, _C_KIND[src.dtype], src.strides[0],
-                                    oh, ow, out.ctypes.data))
+        _c_check(self._quarter_sums(_addr(src), _C_KIND[src.dtype], src.strides[0],
+                                    oh, ow, _addr(out)))
         return out
 
     def box_down_twice(self, src: NDArray[np.generic], r: int, scale: float
@@ -1228,8 +1235,8 @@ class _NativeDrift:
         src = np.ascontiguousarray(src)
         h, w = src.shape
         out = np.empty((h, w), np.float32)
-        _c_check(self._box_down_twice(src.ctypes.data, _C_KIND[src.dtype], h, w, int(r),
-                                      float(scale), out.ctypes.data))
+        _c_check(self._box_down_twice(_addr(src), _C_KIND[src.dtype], h, w, int(r),
+                                      float(scale), _addr(out)))
         return out
 
     def box_sums_down2(self, src: NDArray[np.uint16], r: int) -> NDArray[np.int32]:
@@ -1237,7 +1244,7 @@ class _NativeDrift:
         src = np.ascontiguousarray(src, dtype=np.uint16)
         h, w = src.shape
         out = np.empty((h, w), np.int32)
-        _c_check(self._box_sums_down2(src.ctypes.data, h, w, int(r), out.ctypes.data))
+        _c_check(self._box_sums_down2(_addr(src), h, w, int(r), _addr(out)))
         return out
 
     def highpass_rest(self, low_h: NDArray[np.float32], med: NDArray[np.generic], r: int,
@@ -1252,9 +1259,9 @@ class _NativeDrift:
         win = self._window(window, (h, w))
         out = np.empty((h, w), np.float32)
         mom = np.empty(2)
-        _c_check(self._highpass_rest(low_h.ctypes.data, med.ctypes.data, _C_KIND[med.dtype],
-                                     h, w, int(r), _addr(win), float(scale), out.ctypes.data,
-                                     mom.ctypes.data))
+        _c_check(self._highpass_rest(_addr(low_h), _addr(med), _C_KIND[med.dtype],
+                                     h, w, int(r), _addr(win), float(scale), _addr(out),
+                                     _addr(mom)))
         return out, float(mom[0]), float(mom[1])
 
     def highpass_sums_rest(self, sums_h: NDArray[np.int32], med: NDArray[np.uint16], r: int,
@@ -1267,9 +1274,9 @@ class _NativeDrift:
         win = self._window(window, (h, w))
         out = np.empty((h, w), np.float32)
         mom = np.empty(2)
-        _c_check(self._highpass_sums_rest(sums_h.ctypes.data, med.ctypes.data, h, w, int(r),
-                                          _addr(win), float(scale), out.ctypes.data,
-                                          mom.ctypes.data))
+        _c_check(self._highpass_sums_rest(_addr(sums_h), _addr(med), h, w, int(r),
+                                          _addr(win), float(scale), _addr(out),
+                                          _addr(mom)))
         return out, float(mom[0]), float(mom[1])
 
     @staticmethod
@@ -1291,8 +1298,8 @@ class _NativeDrift:
             raise ValueError("cross_power: spectra of different shapes")
         cross = np.empty_like(spec)
         norm = np.empty_like(spec)
-        self._cross_power(spec.ctypes.data, ref.ctypes.data, spec.size // 2, float(eps),
-                          cross.ctypes.data, norm.ctypes.data)
+        _c_check(self._cross_power(_addr(spec), _addr(ref), spec.size // 2,
+                                   float(eps), _addr(cross), _addr(norm)))
         return cross, norm
 
     def peak_box(self, c: NDArray[np.float32], py: int, px: int) -> tuple[float, float, float]:
@@ -1301,7 +1308,7 @@ class _NativeDrift:
         c = np.ascontiguousarray(c, dtype=np.float32)
         rows, cols = c.shape
         out = np.empty(3)
-        self._peak_box(c.ctypes.data, rows, cols, int(py), int(px), out.ctypes.data)
+        self._peak_box(_addr(c), rows, cols, int(py), int(px), _addr(out))
         return float(out[0]), float(out[1]), float(out[2])
 
     def spectral_lags(self, cross: NDArray[np.float32], wy: NDArray[np.float64],
@@ -1318,10 +1325,10 @@ class _NativeDrift:
                   for a in (wy, wx, cos_x, sin_x, cos_y, sin_y)]
         wy, wx, cos_x, sin_x, cos_y, sin_y = arrays
         out = np.empty((3, 3))
-        _c_check(self._spectral_lags(cross.ctypes.data, h, wc, wy.ctypes.data, wx.ctypes.data,
-                                     int(ix), int(iy), cos_x.ctypes.data, sin_x.ctypes.data,
-                                     cos_x.size, cos_y.ctypes.data, sin_y.ctypes.data,
-                                     cos_y.size, out.ctypes.data))
+        _c_check(self._spectral_lags(_addr(cross), h, wc, _addr(wy), _addr(wx),
+                                     int(ix), int(iy), _addr(cos_x), _addr(sin_x),
+                                     cos_x.size, _addr(cos_y), _addr(sin_y),
+                                     cos_y.size, _addr(out)))
         return out
 
 
