@@ -314,48 +314,48 @@ ECL_EXPORT ECL_CLONES int ecl_drift_highpass_sums_rest(const int32_t *sums_h, co
 
 /* ------------------------------------------------------------------ phase correlation */
 
-/* q[k] = sqrt(q[k]), correctly rounded (IEEE), as sqrtf: with SSE2 four at a time
- * (sqrtf itself does not vectorise while it may set errno). */
-ECL_INLINE void sqrt_all(float *q, int64_t n) {
-    int64_t k = 0;
-#if defined(__SSE2__)
-    for (; k + 4 <= n; k += 4) _mm_storeu_ps(q + k, _mm_sqrt_ps(_mm_loadu_ps(q + k)));
-#endif
-    for (; k < n; ++k) q[k] = sqrtf(q[k]);
-}
-
 /* spec * conj(ref) and its normalised form P |P| / (|P|^2 + eps), for n complex64
  * values stored as (re, im) float32 pairs, in float32 as numpy computes it (|P| is the
  * correctly rounded square root of re^2 + im^2, as numpy's abs of complex64 for these
- * finite values). In blocks of CROSS_BLOCK values that stay in cache. */
-#define CROSS_BLOCK 512
+ * finite values). With SSE2 four values at a time (sqrtf does not vectorise while it
+ * may set errno; _mm_sqrt_ps is the same IEEE square root). */
 ECL_EXPORT ECL_CLONES int ecl_drift_cross_power(const float *spec, const float *ref,
                                                 int64_t n, double eps, float *cross,
                                                 float *norm) {
     const float e = (float)eps;
-    float bre[CROSS_BLOCK], bim[CROSS_BLOCK], q[CROSS_BLOCK];
-    for (int64_t k0 = 0; k0 < n; k0 += CROSS_BLOCK) {
-        const int64_t nb = n - k0 < CROSS_BLOCK ? n - k0 : CROSS_BLOCK;
-        const float *a = spec + 2 * k0, *b = ref + 2 * k0;
-        float *x = cross + 2 * k0, *y = norm + 2 * k0;
-        for (int64_t k = 0; k < nb; ++k) {
-            float ar = a[2 * k], ai = a[2 * k + 1];
-            float br = b[2 * k], bi = -b[2 * k + 1];
-            float re = ar * br - ai * bi;
-            float im = ar * bi + ai * br;
-            bre[k] = re;
-            bim[k] = im;
-            q[k] = re * re + im * im;
-        }
-        sqrt_all(q, nb);
-        for (int64_t k = 0; k < nb; ++k) {
-            float m = q[k];
-            float f = m / (m * m + e);
-            x[2 * k] = bre[k];
-            x[2 * k + 1] = bim[k];
-            y[2 * k] = bre[k] * f;
-            y[2 * k + 1] = bim[k] * f;
-        }
+    int64_t k = 0;
+#if defined(__SSE2__)
+    const __m128 ev = _mm_set1_ps(e);
+    const __m128 sign = _mm_set1_ps(-0.0f);
+    for (; k + 4 <= n; k += 4) {
+        __m128 a0 = _mm_loadu_ps(spec + 2 * k), a1 = _mm_loadu_ps(spec + 2 * k + 4);
+        __m128 b0 = _mm_loadu_ps(ref + 2 * k), b1 = _mm_loadu_ps(ref + 2 * k + 4);
+        __m128 ar = _mm_shuffle_ps(a0, a1, _MM_SHUFFLE(2, 0, 2, 0));
+        __m128 ai = _mm_shuffle_ps(a0, a1, _MM_SHUFFLE(3, 1, 3, 1));
+        __m128 br = _mm_shuffle_ps(b0, b1, _MM_SHUFFLE(2, 0, 2, 0));
+        __m128 bi = _mm_xor_ps(_mm_shuffle_ps(b0, b1, _MM_SHUFFLE(3, 1, 3, 1)), sign);
+        __m128 re = _mm_sub_ps(_mm_mul_ps(ar, br), _mm_mul_ps(ai, bi));
+        __m128 im = _mm_add_ps(_mm_mul_ps(ar, bi), _mm_mul_ps(ai, br));
+        __m128 m = _mm_sqrt_ps(_mm_add_ps(_mm_mul_ps(re, re), _mm_mul_ps(im, im)));
+        __m128 f = _mm_div_ps(m, _mm_add_ps(_mm_mul_ps(m, m), ev));
+        _mm_storeu_ps(cross + 2 * k, _mm_unpacklo_ps(re, im));
+        _mm_storeu_ps(cross + 2 * k + 4, _mm_unpackhi_ps(re, im));
+        __m128 yr = _mm_mul_ps(re, f), yi = _mm_mul_ps(im, f);
+        _mm_storeu_ps(norm + 2 * k, _mm_unpacklo_ps(yr, yi));
+        _mm_storeu_ps(norm + 2 * k + 4, _mm_unpackhi_ps(yr, yi));
+    }
+#endif
+    for (; k < n; ++k) {
+        float ar = spec[2 * k], ai = spec[2 * k + 1];
+        float br = ref[2 * k], bi = -ref[2 * k + 1];
+        float re = ar * br - ai * bi;
+        float im = ar * bi + ai * br;
+        cross[2 * k] = re;
+        cross[2 * k + 1] = im;
+        float m = sqrtf(re * re + im * im);
+        float f = m / (m * m + e);
+        norm[2 * k] = re * f;
+        norm[2 * k + 1] = im * f;
     }
     return 0;
 }
