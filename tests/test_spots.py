@@ -583,7 +583,9 @@ def test_drift_kernel_halving_is_opencv_area_resize(dtype):
     rng = np.random.default_rng(7)
     top = 255 if dtype == np.uint8 else 65535
     buf = rng.integers(0, top + 1, (90, 200)).astype(dtype)
-    for img in (buf, buf[:, :160], buf[:88, :6]):
+    frozen = buf.copy()
+    frozen.setflags(write=False)  # a read-only plane (decoded frames may be)
+    for img in (buf, buf[:, :160], buf[:88, :6], frozen):
         h, w = img.shape[0] // 2, img.shape[1] // 2
         got = k.halve_to_float(img, np.empty((h, w), np.float32))
         ref = cv2.resize(img.astype(np.float32), (w, h), interpolation=cv2.INTER_AREA)
@@ -624,6 +626,18 @@ def test_highpass_kernels_match_the_opencv_code(monkeypatch, shape, highpass_px)
     np.testing.assert_allclose(got, ref, rtol=0, atol=5e-5)
     assert mean == pytest.approx(ref_mean, abs=1e-6)
     assert sd == pytest.approx(ref_sd, rel=1e-6)
+
+
+def test_no_compiled_drift_kernels_with_jit_off(monkeypatch):
+    # ECL_QUANT_JIT=0 turns the C kernels off (the OpenCV / numpy code runs); common
+    # practice for an optional accelerator: one switch, checked at each use.
+    from ecl_quant import _jit
+    from ecl_quant.spots import _drift_kernels
+
+    monkeypatch.setenv("ECL_QUANT_JIT", "0")
+    assert _jit.native("drift") is None and _drift_kernels() is None
+    monkeypatch.setenv("ECL_QUANT_JIT", "1")
+    assert (_drift_kernels() is None) == (_jit.native("drift") is None)
 
 
 def test_drift_tracker_same_shifts_with_and_without_kernels(monkeypatch):
@@ -705,6 +719,14 @@ def test_drift_kernel_cross_power_and_peak_box_are_the_numpy_code():
     np.testing.assert_allclose(norm.view(np.complex64), ref * (mag / (mag * mag + 1.1920929e-07)),
                                rtol=0, atol=2e-6)
     assert norm.view(np.complex64)[3, 4] == 0
+    # a count of values that is not a multiple of the vector width (7 x 5: 3 left over)
+    a2, b2 = a[:7, :5].copy(), b[:7, :5].copy()
+    cross2, norm2 = k.cross_power(a2.view(np.float32), b2.view(np.float32), 1.1920929e-07)
+    ref2 = a2 * np.conj(b2)
+    mag2 = np.abs(ref2)
+    np.testing.assert_allclose(cross2.view(np.complex64), ref2, rtol=1e-6, atol=0)
+    np.testing.assert_allclose(norm2.view(np.complex64),
+                               ref2 * (mag2 / (mag2 * mag2 + 1.1920929e-07)), rtol=0, atol=2e-6)
     c = rng.random((20, 30)).astype(np.float32)
     for py, px in ((0, 0), (19, 29), (10, 1), (7, 15)):
         box = np.roll(c, (2 - py, 2 - px), axis=(0, 1))[:5, :5].astype(np.float64)
