@@ -54,7 +54,7 @@ ECL_INLINE int64_t py_mod(int64_t a, int64_t n) {
  * adding the float32 codes, whose partial sums are whole numbers below 2 ** 24. */
 #define DEFINE_HALVE(NAME, T)                                                            \
     ECL_INLINE void NAME(const char *src, int64_t stride_row, int64_t oh, int64_t ow,   \
-                         float *out, int32_t *v) {                                      \
+                         float *restrict out, int32_t *restrict v) {                    \
         for (int64_t i = 0; i < oh; ++i) {                                              \
             const T *r0 = (const T *)(src + 2 * i * stride_row);                        \
             const T *r1 = (const T *)(src + (2 * i + 1) * stride_row);                  \
@@ -87,7 +87,8 @@ ECL_EXPORT ECL_CLONES int ecl_drift_halve_to_float(const void *src, int64_t kind
  * are the row buffers v0, v1 (4 ow) and t (2 ow). */
 #define DEFINE_QUARTER(NAME, T, TO)                                                      \
     ECL_INLINE void NAME(const char *src, int64_t stride_row, int64_t oh, int64_t ow,   \
-                         TO *out, TO *v0, TO *v1, TO *t) {                              \
+                         TO *restrict out, TO *restrict v0, TO *restrict v1,            \
+                         TO *restrict t) {                                              \
         const int64_t w = 4 * ow;                                                       \
         for (int64_t i = 0; i < oh; ++i) {                                              \
             const T *r0 = (const T *)(src + 4 * i * stride_row);                        \
@@ -132,8 +133,8 @@ ECL_EXPORT ECL_CLONES int ecl_drift_quarter_sums(const void *src, int64_t kind,
  * float32: running sums in float64 per column (cv2.blur with a (1, 2 r + 1) kernel and
  * inv = 1 / (2 r + 1), vectorised over each row). acc holds w doubles. */
 #define DEFINE_BOX(NAME, T)                                                              \
-    ECL_INLINE void NAME(const T *src, int64_t h, int64_t w, int64_t r, double inv,          \
-                     double *acc, float *dst) {                                         \
+    ECL_INLINE void NAME(const T *restrict src, int64_t h, int64_t w, int64_t r, double inv, \
+                     double *restrict acc, float *restrict dst) {                       \
         for (int64_t j = 0; j < w; ++j) acc[j] = 0.0;                                   \
         for (int64_t t = -r; t <= r; ++t) {                                             \
             const T *row = src + (t < 0 ? -t - 1 : t) * w;                              \
@@ -176,8 +177,8 @@ ECL_EXPORT ECL_CLONES int ecl_drift_box_down_twice(const void *src, int64_t kind
 
 /* Exact int32 sums over rows i - r .. i + r (BORDER_REFLECT, r < h) of src. */
 #define DEFINE_BOX_SUMS(NAME, T)                                                         \
-    ECL_INLINE void NAME(const T *src, int64_t h, int64_t w, int64_t r, int32_t *acc,        \
-                     int32_t *dst) {                                                    \
+    ECL_INLINE void NAME(const T *restrict src, int64_t h, int64_t w, int64_t r,             \
+                     int32_t *restrict acc, int32_t *restrict dst) {                    \
         for (int64_t j = 0; j < w; ++j) acc[j] = 0;                                     \
         for (int64_t t = -r; t <= r; ++t) {                                             \
             const T *row = src + (t < 0 ? -t - 1 : t) * w;                              \
@@ -220,9 +221,11 @@ ECL_EXPORT ECL_CLONES int ecl_drift_box_sums_down2(const uint16_t *src, int64_t 
  * squares in float64 (sequential over rows, then over columns): moments[0], [1]. With a
  * window, out becomes (out - float32(mean)) * window, in float32. */
 #define DEFINE_REST(NAME, TM, TT, ACC)                                                   \
-    ECL_INLINE void NAME(const TT *tmp, const TM *med, int64_t h, int64_t w, int64_t r,      \
-                     double c, float sc, const float *window, ACC *acc, double *s1,     \
-                     double *s2, float *out, double *moments) {                         \
+    ECL_INLINE void NAME(const TT *restrict tmp, const TM *restrict med, int64_t h,          \
+                     int64_t w, int64_t r, double c, float sc,                          \
+                     const float *restrict window, ACC *restrict acc,                   \
+                     double *restrict s1, double *restrict s2, float *restrict out,     \
+                     double *restrict moments) {                                        \
         for (int64_t j = 0; j < w; ++j) {                                               \
             acc[j] = 0;                                                                 \
             s1[j] = 0.0;                                                                \
