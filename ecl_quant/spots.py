@@ -1536,13 +1536,16 @@ def _spectral_lags(cross: NDArray[np.complex64], shape: tuple[int, int], blur: f
         lags: NDArray[np.float64] = kern.spectral_lags(cross.view(np.float32), wy, wx, ix, iy,
                                                        cos_x, sin_x, cos_y, sin_y)
         return lags
-    weight = np.outer(wy, wx).astype(np.float32)
     d = np.arange(-1, 2)
-    vx = np.exp((2j * np.pi / cols) * np.outer(np.arange(cols // 2 + 1), ix + d))
-    vy = np.exp((2j * np.pi / rows) * np.outer(iy + d, np.arange(rows)))
-    # einsum without optimize: numpy's own loops (a BLAS product of this size may wake
-    # the BLAS threads, which then spin on cores the decoder needs)
-    c = np.einsum("jk,ki->ji", vy, np.einsum("kl,li->ki", cross * weight, vx)).real
+    # the column weights folded into the column factors, the row weights into the row
+    # factors; each contraction as a product and a sum along the rows (numpy's own
+    # loops: a BLAS product of this size may wake the BLAS threads, which then spin on
+    # cores the decoder needs; an einsum of mixed complex types costs 1.3 ms)
+    vx = (np.exp((2j * np.pi / cols) * np.outer(ix + d, np.arange(cols // 2 + 1)))
+          * wx).astype(np.complex64)
+    vy = np.exp((2j * np.pi / rows) * np.outer(iy + d, np.arange(rows))) * wy
+    rows_at = np.stack([np.multiply(cross, v, dtype=np.complex64).sum(axis=1) for v in vx])
+    c = np.einsum("jk,ik->ji", vy, rows_at.astype(np.complex128)).real  # c[j, i]
     return c / (rows * cols)  # type: ignore[no-any-return]
 
 
