@@ -450,15 +450,17 @@ ECL_EXPORT ECL_CLONES int ecl_drift_spectral_lags(const float *cross, int64_t h,
     if (buf == NULL) return -1;
     float *cx = buf, *sx = buf + 3 * wc, *re = buf + 6 * wc, *im = buf + 7 * wc;
     for (int d = 0; d < 3; ++d) {
-        int64_t step = py_mod(ix + d - 1, cols);
+        const int64_t step = py_mod(ix + d - 1, cols);
+        int64_t t = 0; /* (k * step) % cols, without a division per k */
         for (int64_t k = 0; k < wc; ++k) {
-            int64_t t = (k * step) % cols;
             cx[d * wc + k] = (float)(cos_x[t] * wx[k]);
             sx[d * wc + k] = (float)(sin_x[t] * wx[k]);
+            t += step;
+            if (t >= cols) t -= cols;
         }
     }
     double acc[9] = {0.0};
-    int64_t step_y[3];
+    int64_t step_y[3], t_y[3] = {0, 0, 0}; /* t_y[e] = (ky * step_y[e]) % rows */
     for (int e = 0; e < 3; ++e) step_y[e] = py_mod(iy + e - 1, rows);
     for (int64_t ky = 0; ky < h; ++ky) {
         const float *row = cross + ky * 2 * wc;
@@ -503,9 +505,13 @@ ECL_EXPORT ECL_CLONES int ecl_drift_spectral_lags(const float *cross, int64_t h,
                 ii += re[k] * s[k] + im[k] * c[k];
             }
             for (int e = 0; e < 3; ++e) {
-                int64_t t = (ky * step_y[e]) % rows;
+                const int64_t t = t_y[e];
                 acc[3 * e + d] += wy[ky] * ((double)rr * cos_y[t] - (double)ii * sin_y[t]);
             }
+        }
+        for (int e = 0; e < 3; ++e) {
+            t_y[e] += step_y[e];
+            if (t_y[e] >= rows) t_y[e] -= rows;
         }
     }
     const double size = (double)(rows * cols);
