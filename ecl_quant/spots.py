@@ -1197,8 +1197,8 @@ class _NativeDrift:
 
     @staticmethod
     def _fits(src: NDArray[np.generic], out: NDArray[np.generic], f: int) -> None:
-        if (src.shape[0] < f * out.shape[0] or src.shape[1] < f * out.shape[1]
-                or not out.flags.c_contiguous):
+        if (src.ndim != 2 or out.ndim != 2 or src.shape[0] < f * out.shape[0]
+                or src.shape[1] < f * out.shape[1] or not out.flags.c_contiguous):
             raise ValueError(f"a contiguous output of {out.shape} needs {f} x as many "
                              f"input rows and columns, got {src.shape}")
 
@@ -1209,6 +1209,8 @@ class _NativeDrift:
         src = self._rows(src)
         oh, ow = out.shape
         self._fits(src, out, 2)
+        if out.dtype != np.float32 or src.dtype not in (np.uint8, np.uint16):
+            raise TypeError("halve_to_float: uint8 / uint16 in, float32 out")
         _c_check(self._halve_to_float(_addr(src), _C_KIND[src.dtype], src.strides[0],
                                       oh, ow, _addr(out)))
         return out
@@ -1220,8 +1222,10 @@ class _NativeDrift:
         src = self._rows(src)
         oh, ow = out.shape
         self._fits(src, out, 4)
+        if src.dtype not in (np.uint8, np.uint16):
+            raise TypeError("quarter_sums: uint8 or uint16 codes")
         want = np.uint16 if src.dtype == np.uint8 else np.uint32
-        if out.dtype != want or not out.flags.c_contiguous:
+        if out.dtype != want:
             raise TypeError("quarter_sums: out must be a contiguous %s array"
                             % np.dtype(want).name)
         _c_check(self._quarter_sums(_addr(src), _C_KIND[src.dtype], src.strides[0],
@@ -1233,9 +1237,12 @@ class _NativeDrift:
         """Twice the mean over rows i - r .. i + r (BORDER_REFLECT) of src (float32 or
         uint16) times scale: cv2.blur with a (1, 2 r + 1) kernel, twice."""
         src = np.ascontiguousarray(src)
+        if src.dtype not in (np.float32, np.uint16):
+            raise TypeError("box_down_twice: float32 or uint16 samples")
         h, w = src.shape
         out = np.empty((h, w), np.float32)
-        _c_check(self._box_down_twice(_addr(src), _C_KIND[src.dtype], h, w, int(r),
+        _c_check(self._box_down_twice(_addr(src), _C_KIND[src.dtype], h, w,
+                                      self._radius(r, h),
                                       float(scale), _addr(out)))
         return out
 
@@ -1244,7 +1251,7 @@ class _NativeDrift:
         src = np.ascontiguousarray(src, dtype=np.uint16)
         h, w = src.shape
         out = np.empty((h, w), np.int32)
-        _c_check(self._box_sums_down2(_addr(src), h, w, int(r), _addr(out)))
+        _c_check(self._box_sums_down2(_addr(src), h, w, self._radius(r, h), _addr(out)))
         return out
 
     def highpass_rest(self, low_h: NDArray[np.float32], med: NDArray[np.generic], r: int,
@@ -1255,12 +1262,15 @@ class _NativeDrift:
         float32(mean)) * window instead."""
         low_h = np.ascontiguousarray(low_h, dtype=np.float32)
         med = np.ascontiguousarray(med)
+        if med.dtype not in (np.float32, np.uint16) or low_h.shape != med.shape:
+            raise TypeError("highpass_rest: float32 or uint16 samples, both of one shape")
         h, w = med.shape
+        r = self._radius(r, h)
         win = self._window(window, (h, w))
         out = np.empty((h, w), np.float32)
         mom = np.empty(2)
         _c_check(self._highpass_rest(_addr(low_h), _addr(med), _C_KIND[med.dtype],
-                                     h, w, int(r), _addr(win), float(scale), _addr(out),
+                                     h, w, r, _addr(win), float(scale), _addr(out),
                                      _addr(mom)))
         return out, float(mom[0]), float(mom[1])
 
@@ -1270,7 +1280,10 @@ class _NativeDrift:
         """:meth:`highpass_rest` for uint16 codes from the exact horizontal box sums."""
         sums_h = np.ascontiguousarray(sums_h, dtype=np.int32)
         med = np.ascontiguousarray(med, dtype=np.uint16)
+        if sums_h.shape != med.shape:
+            raise ValueError("highpass_sums_rest: sums and codes of different shapes")
         h, w = med.shape
+        r = self._radius(r, h)
         win = self._window(window, (h, w))
         out = np.empty((h, w), np.float32)
         mom = np.empty(2)
@@ -1278,6 +1291,14 @@ class _NativeDrift:
                                           _addr(win), float(scale), _addr(out),
                                           _addr(mom)))
         return out, float(mom[0]), float(mom[1])
+
+    @staticmethod
+    def _radius(r: int, h: int) -> int:
+        # the running sums reflect once at each border: the window must fit in the rows
+        r = int(r)
+        if not 0 <= r < h:
+            raise ValueError(f"box radius {r} px needs more than {r} rows, got {h}")
+        return r
 
     @staticmethod
     def _window(window: NDArray[np.float32], shape: tuple[int, int]
@@ -1307,6 +1328,8 @@ class _NativeDrift:
         its first moments along the rows and the columns, in float64."""
         c = np.ascontiguousarray(c, dtype=np.float32)
         rows, cols = c.shape
+        if not rows or not cols:
+            raise ValueError("peak_box: an empty surface")
         out = np.empty(3)
         self._peak_box(_addr(c), rows, cols, int(py), int(px), _addr(out))
         return float(out[0]), float(out[1]), float(out[2])
@@ -1324,6 +1347,9 @@ class _NativeDrift:
         arrays = [np.ascontiguousarray(a, dtype=np.float64)
                   for a in (wy, wx, cos_x, sin_x, cos_y, sin_y)]
         wy, wx, cos_x, sin_x, cos_y, sin_y = arrays
+        if sin_x.size != cos_x.size or sin_y.size != cos_y.size or not (cos_x.size
+                                                                       and cos_y.size):
+            raise ValueError("spectral_lags: cos and sin tables of different lengths")
         out = np.empty((3, 3))
         _c_check(self._spectral_lags(_addr(cross), h, wc, _addr(wy), _addr(wx),
                                      int(ix), int(iy), _addr(cos_x), _addr(sin_x),

@@ -628,6 +628,23 @@ def test_highpass_kernels_match_the_opencv_code(monkeypatch, shape, highpass_px)
     assert sd == pytest.approx(ref_sd, rel=1e-6)
 
 
+def test_drift_kernel_wrappers_refuse_what_the_c_code_would_overrun():
+    # common practice for a C extension: sizes and types are checked in Python, so a
+    # wrong call raises instead of reading or writing outside the arrays.
+    k = _kernels_or_skip()
+    img = np.zeros((5, 40), np.float32)
+    with pytest.raises(ValueError):
+        k.box_down_twice(img, 5, 1.0)  # the 11-row box needs more than 5 rows
+    with pytest.raises(ValueError):
+        k.halve_to_float(np.zeros((5, 8), np.uint8), np.empty((3, 4), np.float32))
+    with pytest.raises(TypeError):
+        k.quarter_sums(np.zeros((8, 8), np.uint8), np.empty((2, 2), np.uint32))
+    with pytest.raises(TypeError):
+        k.highpass_rest(img, np.zeros((5, 41), np.float32), 1, np.zeros((0, 0), np.float32), 1.0)
+    with pytest.raises(ValueError):
+        k.cross_power(np.zeros((4, 6), np.float32), np.zeros((4, 8), np.float32), 1e-7)
+
+
 def test_no_compiled_drift_kernels_with_jit_off(monkeypatch):
     # ECL_QUANT_JIT=0 turns the C kernels off (the OpenCV / numpy code runs); common
     # practice for an optional accelerator: one switch, checked at each use.
