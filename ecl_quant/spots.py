@@ -1177,6 +1177,7 @@ class _NativeDrift:
         for name, args, res in (
                 ("halve_to_float", [P, I, I, I, I, P], ctypes.c_int),
                 ("quarter_sums", [P, I, I, I, I, P], ctypes.c_int),
+                ("halve_channel", [P, I, I, I, I, I, P], ctypes.c_int),
                 ("box_down_twice", [P, I, I, I, I, D, P], ctypes.c_int),
                 ("box_sums_down2", [P, I, I, I, P], ctypes.c_int),
                 ("highpass_rest", [P, P, I, I, I, I, P, D, P, P], ctypes.c_int),
@@ -1230,6 +1231,21 @@ class _NativeDrift:
                             % np.dtype(want).name)
         _c_check(self._quarter_sums(_addr(src), _C_KIND[src.dtype], src.strides[0],
                                     oh, ow, _addr(out)))
+        return out
+
+    def halve_channel(self, img: NDArray[np.generic], channel: int) -> NDArray[np.generic]:
+        """:func:`_halve` of channel ``channel`` of a pixel-interleaved (H, W, C) integer
+        image (cv2.resize INTER_AREA rounding), read in place."""
+        if (img.ndim != 3 or img.dtype not in (np.uint8, np.uint16)
+                or not 0 <= channel < img.shape[2] or img.strides[0] <= 0
+                or img.strides[1] <= 0 or img.strides[2] != img.itemsize):
+            raise TypeError("halve_channel: an (H, W, C) uint8 / uint16 image with "
+                            "interleaved samples")
+        oh, ow = img.shape[0] // 2, img.shape[1] // 2
+        out = np.empty((oh, ow), img.dtype)
+        start = img[0, 0, channel:channel + 1] if oh and ow else img
+        _c_check(self._halve_channel(_addr(start), _C_KIND[img.dtype], img.strides[0],
+                                     img.strides[1], oh, ow, _addr(out)))
         return out
 
     def box_down_twice(self, src: NDArray[np.generic], r: int, scale: float
@@ -1427,8 +1443,13 @@ def _downscale_scaled(plane: NDArray[np.generic], factor: int
         twos, rest = twos + 1, rest // 2
     n_int = max(0, twos - 1) if src.dtype != np.float32 else twos
     n_float = twos - n_int
-    if channel is not None and n_int > 0:  # the channel is copied out strip by strip
-        src, channel = _halve(src, channel), None
+    if channel is not None and n_int > 0:
+        kern_c = _drift_kernels()
+        if kern_c is not None:  # the channel's 2 x 2 means read in place
+            src = kern_c.halve_channel(src, channel)  # type: ignore[arg-type]
+        else:  # the channel is copied out strip by strip
+            src = _halve(src, channel)
+        channel = None
         n_int -= 1
     elif channel is not None:
         src, channel = np.ascontiguousarray(src[..., channel]), None

@@ -592,6 +592,29 @@ def test_drift_kernel_halving_is_opencv_area_resize(dtype):
         np.testing.assert_array_equal(got, ref)
 
 
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16])
+def test_drift_kernel_halves_one_channel_in_place_as_opencv(dtype):
+    # Reference: cv2.resize INTER_AREA (2 x 2, rounded to whole codes) of the channel
+    # cv2.extractChannel copies out: bit-identical, for each channel of an RGB image,
+    # of a crop of it and of a read-only copy; and the tracker's downscale of an RGB
+    # still's channel equals that of the copied-out plane.
+    k = _kernels_or_skip()
+    rng = np.random.default_rng(8)
+    top = 255 if dtype == np.uint8 else 65535
+    rgb = rng.integers(0, top + 1, (90, 122, 3)).astype(dtype)
+    frozen = rgb.copy()
+    frozen.setflags(write=False)
+    for img in (rgb, rgb[3:, 5:117], frozen):  # (the crop has an odd row count)
+        h, w = img.shape[0] // 2, img.shape[1] // 2
+        for c in range(3):
+            plane = cv2.extractChannel(np.ascontiguousarray(img[:2 * h, :2 * w]), c)
+            ref = cv2.resize(plane, (w, h), interpolation=cv2.INTER_AREA)
+            np.testing.assert_array_equal(k.halve_channel(img, c), ref)
+    big = rng.integers(0, top + 1, (270, 480, 3)).astype(dtype)
+    np.testing.assert_array_equal(downscale_for_drift(big[..., 1], 4),
+                                  downscale_for_drift(np.ascontiguousarray(big[..., 1]), 4))
+
+
 def test_drift_kernel_box_is_opencv_blur():
     # Reference: cv2.blur with a (1, k) kernel (vertical box, BORDER_REFLECT), twice;
     # the kernel's running sum in float64 agrees to float32 rounding.

@@ -520,4 +520,46 @@ ECL_EXPORT ECL_CLONES int ecl_drift_spectral_lags(const float *cross, int64_t h,
     return 0;
 }
 
+/* ------------------------------------------------------------------ interleaved */
+
+/* One channel of a pixel-interleaved integer image, 2 x 2 block means rounded to a
+ * whole code as cv2.resize INTER_AREA rounds them ((a + b + c + d + 2) >> 2): the first
+ * downscale step of an RGB still, without copying the channel out first. src: the
+ * channel's sample [0, 0]; stride_row and stride_px in bytes; out: oh x ow contiguous,
+ * same type. */
+ECL_EXPORT ECL_CLONES int ecl_drift_halve_channel(const void *src, int64_t kind,
+                                                  int64_t stride_row, int64_t stride_px,
+                                                  int64_t oh, int64_t ow, void *out) {
+    const char *base = (const char *)src;
+    if (kind == ECL_U8) {
+        for (int64_t i = 0; i < oh; ++i) {
+            const unsigned char *r0 = (const unsigned char *)(base + 2 * i * stride_row);
+            const unsigned char *r1 = (const unsigned char *)(base + (2 * i + 1) * stride_row);
+            uint8_t *o = (uint8_t *)out + i * ow;
+            for (int64_t j = 0; j < ow; ++j) {
+                const int64_t a = 2 * j * stride_px, b = a + stride_px;
+                o[j] = (uint8_t)((r0[a] + r0[b] + r1[a] + r1[b] + 2) >> 2);
+            }
+        }
+        return 0;
+    }
+    if (kind == ECL_U16) {
+        for (int64_t i = 0; i < oh; ++i) {
+            const char *r0 = base + 2 * i * stride_row;
+            const char *r1 = base + (2 * i + 1) * stride_row;
+            uint16_t *o = (uint16_t *)out + i * ow;
+            for (int64_t j = 0; j < ow; ++j) {
+                const int64_t a = 2 * j * stride_px, b = a + stride_px;
+                const uint32_t sum = (uint32_t)*(const uint16_t *)(r0 + a)
+                                     + *(const uint16_t *)(r0 + b)
+                                     + *(const uint16_t *)(r1 + a)
+                                     + *(const uint16_t *)(r1 + b);
+                o[j] = (uint16_t)((sum + 2) >> 2);
+            }
+        }
+        return 0;
+    }
+    return -2;
+}
+
 #include "shell.h"
