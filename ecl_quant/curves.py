@@ -1340,13 +1340,10 @@ class SpotIntegrator:
         if table.dtype != np.float32:
             return None
         source = getattr(coded, "source", None)
+        if source is not None and any(v & (v - 1) for v in source.step):
+            source = None  # chroma steps that are not powers of two: from the crop
         if source is None and coded.codes.dtype not in (np.uint8, np.uint16):
             return None
-        if source is not None and source.step[0] & (source.step[0] - 1) | (
-                source.step[1] & (source.step[1] - 1)):
-            source = None  # chroma steps that are not powers of two: from the crop
-            if coded.codes.dtype not in (np.uint8, np.uint16):
-                return None
         runs = fast.get("runs")
         if runs is None:
             runs = _jit.as_runs(fast["pix"], self.geometry.shape[1])
@@ -1377,11 +1374,8 @@ class SpotIntegrator:
             out = kernels.spot_frame_planes(
                 source.luma, source.chroma, int(source.bounds[0]), int(source.bounds[2]),
                 shifts[0], shifts[1], runs, int(sy), int(sx), *common)
-        else:
-            # One compiled variant per code type, not per memory layout (a view of a
-            # plane is copied: a fraction of the crop's cost).
-            out = kernels.spot_frame(np.ascontiguousarray(coded.codes), runs, int(sy),
-                                     int(sx), *common)
+        else:  # any strides: the kernel reads rows through them
+            out = kernels.spot_frame(coded.codes, runs, int(sy), int(sx), *common)
         s1, s2, med, mean, sd, cnt, lev, sq, y_max, ok = out
         if not ok:
             return None
