@@ -630,6 +630,19 @@ def test_read_ahead_raises_a_bad_file_in_its_place(tmp_path):
     assert info.value.path.endswith("s3.jpg")
 
 
+def _open_files() -> list[str]:
+    """Paths this process has open (Linux /proc/self/fd, proc(5)); empty elsewhere."""
+    fds = Path("/proc/self/fd")
+    links = []
+    if fds.is_dir():
+        for fd in fds.iterdir():
+            try:
+                links.append(os.readlink(fd))
+            except OSError:
+                continue
+    return links
+
+
 def test_read_ahead_stops_cleanly_when_the_consumer_stops(tmp_path):
     # Closing the generator early must cancel the queued decodes, join the worker and
     # close the files it opened (threading docs: no lingering reader thread).
@@ -643,16 +656,8 @@ def test_read_ahead_stops_cleanly_when_the_consumer_stops(tmp_path):
     assert Path(first.source).name == "s00.jpg"
     gen.close()
     assert not [t for t in threading.enumerate() if t.name.startswith("ecl-quant-read")]
-    # No file of the folder is still open (Linux /proc/self/fd, proc(5)).
-    fds = Path("/proc/self/fd")
-    if fds.is_dir():
-        open_files = []
-        for fd in fds.iterdir():
-            try:
-                open_files.append(os.readlink(fd))
-            except OSError:
-                continue
-        assert not [f for f in open_files if f.startswith(str(tmp_path))]
+    # No file of the folder is still open.
+    assert not [f for f in _open_files() if f.startswith(str(tmp_path))]
 
 
 def test_video_decoded_ahead_equals_inline_decoding(tmp_path, monkeypatch):
@@ -686,15 +691,7 @@ def test_video_decoded_ahead_equals_inline_decoding(tmp_path, monkeypatch):
     next(gen)
     gen.close()
     assert not [t for t in threading.enumerate() if t.name == "ecl-quant-decode"]
-    fds = Path("/proc/self/fd")
-    if fds.is_dir():
-        links = []
-        for fd in fds.iterdir():
-            try:
-                links.append(os.readlink(fd))
-            except OSError:
-                continue
-        assert str(path) not in links
+    assert str(path) not in _open_files()
 
 
 def test_decoded_ahead_keeps_warnings_and_errors_in_place():
