@@ -15,26 +15,6 @@
 
 enum { ECL_F32 = 0, ECL_U8 = 1, ECL_U16 = 2 };
 
-/* The exported kernels are built twice where the compiler can pick one at load time
- * (GCC on x86-64 Linux, ifunc): for AVX2 and for the baseline instruction set. Only the
- * vector width differs: the same IEEE operations in the same order (no fused
- * multiply-adds: contraction is off), so both give the same bits. The helpers are
- * inlined into each. Define ECL_NO_CLONES to build the baseline alone. */
-#if defined(__GNUC__) && !defined(__clang__) && defined(__x86_64__) && defined(__linux__) \
-    && !defined(ECL_NO_CLONES)
-#define ECL_CLONES __attribute__((target_clones("avx2", "default")))
-#else
-#define ECL_CLONES
-#endif
-#if defined(__GNUC__)
-#define ECL_INLINE static inline __attribute__((always_inline))
-#else
-#define ECL_INLINE static __inline
-#endif
-#if defined(_MSC_VER) && !defined(restrict)
-#define restrict __restrict
-#endif
-
 #if defined(__SSE2__)
 #include <emmintrin.h>
 #endif

@@ -24,22 +24,36 @@
  * planes and the content is shifted by (dy, dx). Codes are luma[r, c] or, with a
  * chroma plane (paired: video red/blue), luma[r, c] * 256 + chroma[min(r >> sy_shift,
  * last row), min(c >> sx_shift, last column)] (the nearest chroma sample). */
-ECL_EXPORT void ecl_gather(const char *luma, int64_t l_srow, int64_t l_scol,
-                           int64_t l_item, const char *chroma, int64_t c_srow,
-                           int64_t c_scol, int64_t c_rows, int64_t c_cols, int64_t r0,
-                           int64_t c0, int64_t sy_shift, int64_t sx_shift,
-                           const int64_t *runs, int64_t n_runs, int64_t dy, int64_t dx,
-                           const float *table, int32_t *keys, float *vals) {
+ECL_EXPORT ECL_CLONES void ecl_gather(const char *luma, int64_t l_srow, int64_t l_scol,
+                                      int64_t l_item, const char *chroma, int64_t c_srow,
+                                      int64_t c_scol, int64_t c_rows, int64_t c_cols,
+                                      int64_t r0, int64_t c0, int64_t sy_shift,
+                                      int64_t sx_shift, const int64_t *runs, int64_t n_runs,
+                                      int64_t dy, int64_t dx, const float *table,
+                                      int32_t *keys, float *vals) {
     for (int64_t q = 0; q < n_runs; q++) {
         const int64_t e0 = runs[4 * q], n = runs[4 * q + 3];
         const int64_t r = r0 + runs[4 * q + 1] + dy;
         const int64_t c = c0 + runs[4 * q + 2] + dx;
         const char *y_row = luma + r * l_srow + c * l_scol;
-        int32_t *kk = keys + e0;
+        int32_t *restrict kk = keys + e0;
+        float *restrict vv = vals + e0;
         if (chroma != NULL) {
             int64_t cr = r >> sy_shift;
             if (cr > c_rows - 1) cr = c_rows - 1;
             const char *c_row = chroma + cr * c_srow;
+            if (l_scol == 1 && c_scol == 1 && c >= 0 && n > 0
+                && ((c + n - 1) >> sx_shift) <= c_cols - 1) {
+                /* contiguous samples, no chroma column past the last: no clamping */
+                const uint8_t *yy = (const uint8_t *)y_row;
+                const uint8_t *ch = (const uint8_t *)c_row;
+                for (int64_t t = 0; t < n; t++) {
+                    const int32_t k = ((int32_t)yy[t] << 8) | (int32_t)ch[(c + t) >> sx_shift];
+                    kk[t] = k;
+                    vv[t] = table[k];
+                }
+                continue;
+            }
             for (int64_t t = 0; t < n; t++) {
                 int64_t cc = (c + t) >> sx_shift;
                 if (cc > c_cols - 1) cc = c_cols - 1;
@@ -52,19 +66,56 @@ ECL_EXPORT void ecl_gather(const char *luma, int64_t l_srow, int64_t l_scol,
         } else {
             for (int64_t t = 0; t < n; t++) kk[t] = *(const uint16_t *)(y_row + t * l_scol);
         }
-        float *vv = vals + e0;
         for (int64_t t = 0; t < n; t++) vv[t] = table[kk[t]];
     }
 }
 
 /* ------------------------------------------------------------------ sums */
 
-static void aperture_sums(const float *vals, const float *w1, const float *w2,
-                          const int64_t *starts, int64_t n, double *s1, double *s2) {
+/* Four partial sums: lane k of a vector (GCC/Clang vector extensions; plain C
+ * elsewhere) holds the terms i with i % 4 == k of a group, each in the order of i. The
+ * same IEEE operations as the plain loop whatever the vector width. */
+#if defined(__GNUC__)
+typedef float ecl_v4f __attribute__((vector_size(16)));
+typedef double ecl_v4d __attribute__((vector_size(32)));
+#define ECL_VEC4 1
+/* widened float32 values, and float32 products widened (macros: a vector return value
+ * would depend on the instruction set's calling convention) */
+#define LOAD4(dst, p)                                                                  \
+    do {                                                                               \
+        ecl_v4f f_;                                                                    \
+        memcpy(&f_, (p), sizeof f_);                                                   \
+        (dst) = __builtin_convertvector(f_, ecl_v4d);                                  \
+    } while (0)
+#define MUL4(dst, w, v)                                                                \
+    do {                                                                               \
+        ecl_v4f a_, b_;                                                                \
+        memcpy(&a_, (w), sizeof a_);                                                   \
+        memcpy(&b_, (v), sizeof b_);                                                   \
+        (dst) = __builtin_convertvector(a_ * b_, ecl_v4d);                             \
+    } while (0)
+#endif
+
+ECL_INLINE void aperture_sums(const float *vals, const float *w1, const float *w2,
+                              const int64_t *starts, int64_t n, double *s1, double *s2) {
     for (int64_t g = 0; g < n; g++) {
         double a[4] = {0, 0, 0, 0}, b[4] = {0, 0, 0, 0};
         int64_t i = starts[g];
         const int64_t end = starts[g + 1];
+#if defined(ECL_VEC4)
+        ecl_v4d va = {0, 0, 0, 0}, vb = {0, 0, 0, 0};
+        for (; i + 4 <= end; i += 4) {
+            ecl_v4d p1, p2;
+            MUL4(p1, w1 + i, vals + i);
+            MUL4(p2, w2 + i, vals + i);
+            va += p1;
+            vb += p2;
+        }
+        for (int k = 0; k < 4; k++) {
+            a[k] = va[k];
+            b[k] = vb[k];
+        }
+#else
         for (; i + 4 <= end; i += 4) {
             for (int k = 0; k < 4; k++) {
                 const float v = vals[i + k];
@@ -72,6 +123,7 @@ static void aperture_sums(const float *vals, const float *w1, const float *w2,
                 b[k] += (double)(w2[i + k] * v);
             }
         }
+#endif
         for (; i < end; i++) {
             a[0] += (double)(w1[i] * vals[i]);
             b[0] += (double)(w2[i] * vals[i]);
@@ -83,12 +135,28 @@ static void aperture_sums(const float *vals, const float *w1, const float *w2,
 
 /* Level of the middle frame (x1) and squared second differences x2 - 2 x1 + x0 per
  * group (x2: this frame's values). */
-static void noise_sums(const float *vals, const float *x0, const float *x1,
-                       const int64_t *starts, int64_t m, double *lev, double *sq) {
+ECL_INLINE void noise_sums(const float *vals, const float *x0, const float *x1,
+                           const int64_t *starts, int64_t m, double *lev, double *sq) {
     for (int64_t g = 0; g < m; g++) {
         double a[4] = {0, 0, 0, 0}, b[4] = {0, 0, 0, 0};
         int64_t i = starts[g];
         const int64_t end = starts[g + 1];
+#if defined(ECL_VEC4)
+        ecl_v4d va = {0, 0, 0, 0}, vb = {0, 0, 0, 0};
+        for (; i + 4 <= end; i += 4) {
+            ecl_v4d m1, v, z;
+            LOAD4(m1, x1 + i);
+            LOAD4(v, vals + i);
+            LOAD4(z, x0 + i);
+            const ecl_v4d d = v - m1 - m1 + z;
+            va += m1;
+            vb += d * d;
+        }
+        for (int k = 0; k < 4; k++) {
+            a[k] = va[k];
+            b[k] = vb[k];
+        }
+#else
         for (; i + 4 <= end; i += 4) {
             for (int k = 0; k < 4; k++) {
                 const double m1 = (double)x1[i + k];
@@ -97,6 +165,7 @@ static void noise_sums(const float *vals, const float *x0, const float *x1,
                 b[k] += d * d;
             }
         }
+#endif
         for (; i < end; i++) {
             const double m1 = (double)x1[i];
             const double d = (double)vals[i] - m1 - m1 + (double)x0[i];
@@ -238,38 +307,42 @@ ECL_EXPORT int ecl_clip_rows(const double *values, const int64_t *counts,
 /* Each annulus (groups n .. 2n-1) as its distinct values, ascending, with counts: a
  * histogram of its codes over the frame's code range (paired codes: over the box of
  * both bytes), plus one entry per replaced pixel with its own value; then clipped.
- * Returns 1, or 0 when the range is too wide for a histogram (span x n > 4 x entries)
- * or an annulus is empty or holds replaced pixels only (the caller's numpy path then
- * runs), -1 when out of memory. */
-static int annulus_stats(const int32_t *keys, const float *vals, const unsigned char *gone,
-                         const int64_t *starts, int64_t n, int paired, const float *table,
-                         double clip_sigma, double *med, double *mean, double *sd,
-                         int64_t *cnt) {
+ * gone_at (n_gone entries, ascending, distinct) and gone_group list the replaced
+ * annulus entries and their groups. Returns 1, or 0 when the range is too wide for a
+ * histogram (span x n > 4 x entries) or an annulus is empty or holds replaced pixels
+ * only (the caller's numpy path then runs), -1 when out of memory. */
+ECL_INLINE int annulus_stats(const int32_t *keys, const float *vals, const int64_t *gone_at,
+                             const int64_t *gone_group, int64_t n_gone_all,
+                             const int64_t *starts, int64_t n, int paired, const float *table,
+                             double clip_sigma, double *med, double *mean, double *sd,
+                             int64_t *cnt) {
     const int64_t b0 = starts[n], b1 = starts[2 * n];
     if (b1 <= b0) return 0;
-    int64_t h_min = INT64_MAX, h_max = -1, l_min = INT64_MAX, l_max = -1;
+    /* int32 running extremes (no branches): the loops vectorise */
+    int32_t h_min = INT32_MAX, h_max = -1, l_min = INT32_MAX, l_max = -1;
     if (paired) {
         for (int64_t i = b0; i < b1; i++) {
-            const int64_t h = keys[i] >> 8, l = keys[i] & 0xFF;
-            if (h < h_min) h_min = h;
-            if (h > h_max) h_max = h;
-            if (l < l_min) l_min = l;
-            if (l > l_max) l_max = l;
+            const int32_t h = keys[i] >> 8, l = keys[i] & 0xFF;
+            h_min = h < h_min ? h : h_min;
+            h_max = h > h_max ? h : h_max;
+            l_min = l < l_min ? l : l_min;
+            l_max = l > l_max ? l : l_max;
         }
     } else {
         for (int64_t i = b0; i < b1; i++) {
-            if (keys[i] < h_min) h_min = keys[i];
-            if (keys[i] > h_max) h_max = keys[i];
+            const int32_t k = keys[i];
+            h_min = k < h_min ? k : h_min;
+            h_max = k > h_max ? k : h_max;
         }
         l_min = 0;
         l_max = 0;
     }
-    const int64_t l_span = l_max - l_min + 1;
-    const int64_t span = (h_max - h_min + 1) * l_span;
+    const int64_t l_span = (int64_t)l_max - l_min + 1;
+    const int64_t span = ((int64_t)h_max - h_min + 1) * l_span;
     if (span * n > 4 * (b1 - b0)) return 0;
     const int shift = paired ? 8 : 0;
     const int32_t mask = paired ? 0xFF : 0;
-    const int64_t key_base = h_min * l_span + l_min;
+    const int64_t key_base = (int64_t)h_min * l_span + l_min;
     /* Four interleaved histograms: runs of equal codes (most of an annulus) would
      * otherwise wait on the previous increment of the same counter. */
     int32_t *hist = (int32_t *)calloc((size_t)(4 * n * span), sizeof(int32_t));
@@ -300,17 +373,15 @@ static int annulus_stats(const int32_t *keys, const float *vals, const unsigned 
         }
     }
     for (int64_t j = 0; j < hs; j++) hist[j] += hist[hs + j] + hist[2 * hs + j] + hist[3 * hs + j];
+    for (int64_t j = 0; j < n_gone_all; j++) {
+        const int64_t g = gone_group[j];
+        const int32_t k = keys[gone_at[j]];
+        hist[g * span - key_base + (int64_t)(k >> shift) * l_span + (k & mask)] -= 1;
+        n_gone[g]++;
+    }
     int status = 1;
     int64_t total = 0;
     for (int64_t g = 0; g < n; g++) {
-        int32_t *h = hist + g * span - key_base;
-        for (int64_t i = starts[n + g]; i < starts[n + g + 1]; i++) {
-            if (gone[i]) {
-                const int32_t k = keys[i];
-                h[(int64_t)(k >> shift) * l_span + (k & mask)] -= 1;
-                n_gone[g]++;
-            }
-        }
         if (n_gone[g] >= starts[n + g + 1] - starts[n + g]) status = 0;
         int64_t m = n_gone[g];
         for (int64_t j = 0; j < span; j++) m += hist[g * span + j] > 0;
@@ -328,6 +399,7 @@ static int annulus_stats(const int32_t *keys, const float *vals, const unsigned 
         if (rows == NULL || values == NULL || counts == NULL) status = -1;
     }
     if (status == 1) {
+        int64_t next_gone = 0; /* gone entries come in ascending order, so by group */
         for (int64_t g = 0; g < n; g++) {
             entry *row = rows + off[g];
             int64_t m = 0;
@@ -340,14 +412,10 @@ static int annulus_stats(const int32_t *keys, const float *vals, const unsigned 
                     m++;
                 }
             }
-            if (n_gone[g]) {
-                for (int64_t i = starts[n + g]; i < starts[n + g + 1]; i++) {
-                    if (gone[i]) {
-                        row[m].value = (double)vals[i];
-                        row[m].count = 1;
-                        m++;
-                    }
-                }
+            for (; next_gone < n_gone_all && gone_group[next_gone] == g; next_gone++) {
+                row[m].value = (double)vals[gone_at[next_gone]];
+                row[m].count = 1;
+                m++;
             }
             qsort(row, (size_t)m, sizeof(entry), by_value);
             for (int64_t j = 0; j < m; j++) {
@@ -374,12 +442,12 @@ static int annulus_stats(const int32_t *keys, const float *vals, const unsigned 
  * starts[0 .. 2n] (apertures 0 .. n-1, then annuli); hits: entries whose value is
  * given (replaced hot pixels), hit_values their values. With with_noise, x0 and x1 are
  * the previous two frames' values of the same entries; paired: the codes are
- * Y' * 256 + C (from planes with a chroma plane, or a crop of such codes). Outputs: vals (every entry),
- * s1, s2 (weighted aperture sums), med, mean, sd, cnt (annulus clipping), lev, sq
- * (noise sums, 2n groups; untouched without with_noise), y_max (highest first byte,
- * Y' for video, of the aperture entries that keep their code). Returns as
- * annulus_stats. */
-ECL_EXPORT int ecl_spot_frame(
+ * Y' * 256 + C (from planes with a chroma plane, or a crop of such codes). Outputs:
+ * vals (every entry), s1, s2 (weighted aperture sums), med, mean, sd, cnt (annulus
+ * clipping), lev, sq (noise sums, 2n groups; untouched without with_noise), y_max
+ * (highest first byte, Y' for video, of the aperture entries that keep their code).
+ * Returns as annulus_stats. */
+ECL_EXPORT ECL_CLONES int ecl_spot_frame(
     const char *luma, int64_t l_srow, int64_t l_scol, int64_t l_item, const char *chroma,
     int64_t c_srow, int64_t c_scol, int64_t c_rows, int64_t c_cols, int64_t r0, int64_t c0,
     int64_t sy_shift, int64_t sx_shift, const int64_t *runs, int64_t n_runs, int64_t dy,
@@ -389,9 +457,10 @@ ECL_EXPORT int ecl_spot_frame(
     float *vals,
     double *s1, double *s2, double *med, double *mean, double *sd, int64_t *cnt,
     double *lev, double *sq, int64_t *y_max) {
-    const int64_t n_pix = starts[2 * n];
+    const int64_t n_pix = starts[2 * n], n_ap = starts[n];
     int32_t *keys = (int32_t *)malloc(sizeof(int32_t) * (size_t)(n_pix > 0 ? n_pix : 1));
-    unsigned char *gone = (unsigned char *)calloc((size_t)(n_pix > 0 ? n_pix : 1), 1);
+    /* the replaced annulus entries, ascending and distinct, with their groups */
+    int64_t *gone = (int64_t *)malloc(sizeof(int64_t) * (size_t)(2 * n_hit + 1));
     if (keys == NULL || gone == NULL) {
         free(keys);
         free(gone);
@@ -399,22 +468,48 @@ ECL_EXPORT int ecl_spot_frame(
     }
     ecl_gather(luma, l_srow, l_scol, l_item, chroma, c_srow, c_scol, c_rows, c_cols, r0, c0,
                sy_shift, sx_shift, runs, n_runs, dy, dx, table, keys, vals);
+    int64_t n_gone = 0;
+    int sorted = 1;
     for (int64_t j = 0; j < n_hit; j++) {
         vals[hit[j]] = hit_values[j];
-        gone[hit[j]] = 1;
+        if (j > 0 && hit[j] <= hit[j - 1]) sorted = 0;
     }
-    int64_t ym = -1;
-    for (int64_t i = 0; i < starts[n]; i++) {
-        if (!gone[i]) {
-            const int64_t y = paired ? (keys[i] >> 8) : keys[i];
-            if (y > ym) ym = y;
+    for (int64_t j = 0; j < n_hit; j++) {
+        const int64_t i = hit[j];
+        if (i >= n_ap) {
+            gone[n_gone++] = i;
         }
     }
-    *y_max = ym;
+    if (!sorted && n_gone > 1) { /* ascending and distinct (insertion sort: few hits) */
+        for (int64_t j = 1; j < n_gone; j++) {
+            const int64_t v = gone[j];
+            int64_t t = j - 1;
+            while (t >= 0 && gone[t] > v) {
+                gone[t + 1] = gone[t];
+                t--;
+            }
+            gone[t + 1] = v;
+        }
+        int64_t u = 0;
+        for (int64_t j = 0; j < n_gone; j++)
+            if (u == 0 || gone[j] != gone[u - 1]) gone[u++] = gone[j];
+        n_gone = u;
+    }
+    int64_t *gone_group = gone + n_hit;
+    for (int64_t j = 0, g = n; j < n_gone; j++) {
+        while (gone[j] >= starts[g + 1]) g++;
+        gone_group[j] = g - n;
+    }
+    /* Replaced aperture entries keep no code: the highest code is of the others. */
+    for (int64_t j = 0; j < n_hit; j++)
+        if (hit[j] < n_ap) keys[hit[j]] = -1;
+    int32_t ym = -1;
+    for (int64_t i = 0; i < n_ap; i++) ym = keys[i] > ym ? keys[i] : ym;
+    *y_max = (paired && ym >= 0) ? (ym >> 8) : ym;
     aperture_sums(vals, ap_w, ap_w2, starts, n, s1, s2);
     if (with_noise) noise_sums(vals, x0, x1, starts, 2 * n, lev, sq);
-    const int status = annulus_stats(keys, vals, gone, starts, n, paired, table, clip_sigma,
-                                     med, mean, sd, cnt);
+    const int status = annulus_stats(keys, vals, gone, gone_group, n_gone, starts, n, paired,
+                                     table, clip_sigma, med, mean, sd, cnt);
     free(keys);
     free(gone);
     return status;
