@@ -1198,8 +1198,6 @@ class SpotIntegrator:
         n = self.n_spots
         fast = self._flat_indices()
         n_ap = g.ap_idx.size
-        # Aperture then background pixels in one gather (no index arithmetic unshifted).
-        where = fast["pix"] + off if off else fast["pix"]
         if replaced is not None and replaced.size:
             hit, which = self._entries_at(replaced - off)
         else:
@@ -1208,7 +1206,7 @@ class SpotIntegrator:
         kernels = _jit.kernels() if coded is not None and starts is not None else None
         compiled = None
         if kernels is not None:
-            compiled = self._add_compiled(kernels, coded, linear_crop, sx, sy, where, hit,
+            compiled = self._add_compiled(kernels, coded, linear_crop, sx, sy, off, hit,
                                           which, replaced_values)
         if compiled is not None:
             pix, s1, s2, (med, mean, sd, cnt), noise_sums, y_max = compiled
@@ -1219,6 +1217,8 @@ class SpotIntegrator:
                                shift_px=shift_px, sx=sx, sy=sy, off=off,
                                saturated_crop=saturated_crop, noise_sums=noise_sums)
             return
+        # Aperture then background pixels in one gather (no index arithmetic unshifted).
+        where = fast["pix"] + off if off else fast["pix"]
         pix_codes = None
         if linear_crop is None:
             pix_codes = coded.codes.reshape(-1)[where]
@@ -1328,7 +1328,7 @@ class SpotIntegrator:
         self._noise.append(stats)
 
     def _add_compiled(self, kernels: Any, coded: Any, linear_crop: NDArray[np.floating] | None,
-                      sx: int, sy: int, where: NDArray[np.intp], hit: NDArray[np.intp],
+                      sx: int, sy: int, off: int, hit: NDArray[np.intp],
                       which: NDArray[np.intp], replaced_values: NDArray[np.floating] | None
                       ) -> tuple[Any, ...] | None:
         """:meth:`add`'s numbers by the compiled kernels (:mod:`ecl_quant._jit`), or None
@@ -1353,7 +1353,7 @@ class SpotIntegrator:
                   tuple(int(v).bit_length() - 1 for v in source.step))
         if hit.size:
             if linear_crop is not None:
-                hit_values = linear_crop.reshape(-1)[where[hit]].astype(np.float32)
+                hit_values = linear_crop.reshape(-1)[fast["pix"][hit] + off].astype(np.float32)
             else:
                 assert replaced_values is not None
                 hit_values = np.asarray(replaced_values, np.float32)[which]
@@ -1361,10 +1361,10 @@ class SpotIntegrator:
             hit_values = np.zeros(0, np.float32)
         prev = self._prev
         with_noise = (len(prev) >= 2 and prev[-1][1] == (sx, sy) and prev[-2][1] == (sx, sy)
-                      and prev[-1][0].size == where.size)
+                      and prev[-1][0].size == fast["pix"].size)
         x0, x1 = ((prev[-2][0], prev[-1][0]) if with_noise
                   else (np.zeros(0, np.float32), np.zeros(0, np.float32)))
-        vals = np.empty(where.size, np.float32)
+        vals = np.empty(fast["pix"].size, np.float32)
         g = self.geometry
         common = (table, fast["starts_all"], g.ap_w, g.ap_w2, hit.astype(np.int64),
                   hit_values, x0, x1, bool(with_noise), bool(getattr(coded, "paired", False)),

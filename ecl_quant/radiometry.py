@@ -818,7 +818,44 @@ class CodedCrop:
 
     def values(self) -> NDArray[np.float32]:
         """Linear value of every pixel (a new float32 array)."""
+        if self._codes is None and self.source is not None:
+            out = _gathered_values(self.source, self.table)
+            if out is not None:
+                return out
         return np.take(self.table, self.codes)
+
+
+@functools.lru_cache(maxsize=8)
+def _row_runs(h: int, w: int) -> NDArray[np.int64]:
+    """The rows of an (h, w) crop as gather runs (first entry, row, column, length)."""
+    r = np.arange(h, dtype=np.int64)
+    runs = np.column_stack([r * w, r, np.zeros(h, np.int64), np.full(h, w, np.int64)])
+    runs.flags.writeable = False
+    return runs
+
+
+def _gathered_values(src: PlaneSource, table: NDArray[Any]) -> NDArray[np.float32] | None:
+    """Every value of the crop read from the planes by the compiled gather (the codes
+    of :meth:`PlaneSource.crop_codes` looked up in ``table``), or None where it does
+    not apply: no kernels, chroma steps that are not powers of two, a table that is
+    not float32 or 16-bit paired samples."""
+    from . import _jit
+
+    kern = _jit.kernels()
+    if (kern is None or table.dtype != np.float32 or not table.flags.c_contiguous
+            or any(v & (v - 1) for v in src.step)):
+        return None
+    if src.chroma is not None and src.luma.dtype.itemsize != 1:
+        return None
+    if table.size < (256 if src.chroma is None and src.luma.dtype.itemsize == 1 else 65536):
+        return None  # the kernel indexes the table with every code without a check
+    h, w = src.shape
+    vals = np.empty(h * w, np.float32)
+    keys = np.empty(h * w, np.int32)
+    sy, sx = (int(v).bit_length() - 1 for v in src.step)
+    kern.gather_planes(src.luma, src.chroma, int(src.bounds[0]), int(src.bounds[2]), sy, sx,
+                       _row_runs(h, w), 0, 0, table, vals, keys)
+    return vals.reshape(h, w)
 
 
 @functools.lru_cache(maxsize=16)

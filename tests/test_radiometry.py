@@ -712,6 +712,9 @@ def test_coded_crop_values_equal_the_formulas(step, shape, channel):
         assert lazy.source is not None and lazy.shape == coded.codes.shape
         flat = rng.integers(0, coded.codes.size, 40)
         np.testing.assert_array_equal(lazy.codes_at(flat), coded.codes.reshape(-1)[flat])
+        # values() before the crop of codes exists: the compiled gather of every pixel
+        # (when built), then from the codes
+        np.testing.assert_array_equal(lazy.values(), expected)
         np.testing.assert_array_equal(lazy.codes, coded.codes)
         np.testing.assert_array_equal(lazy.values(), expected)
 
