@@ -1340,7 +1340,8 @@ class SpotIntegrator:
         if table.dtype != np.float32:
             return None
         source = getattr(coded, "source", None)
-        if source is not None and any(v & (v - 1) for v in source.step):
+        shifts = None if source is None else source.step_shifts
+        if shifts is None:
             source = None  # chroma steps that are not powers of two: from the crop
         if source is None and coded.codes.dtype not in (np.uint8, np.uint16):
             return None
@@ -1349,8 +1350,6 @@ class SpotIntegrator:
             runs = _jit.as_runs(fast["pix"], self.geometry.shape[1])
             fast["runs"] = runs
             fast["starts_all"] = np.append(fast["starts"], fast["pix"].size).astype(np.int64)
-        shifts = (None if source is None else
-                  tuple(int(v).bit_length() - 1 for v in source.step))
         if hit.size:
             if linear_crop is not None:
                 hit_values = linear_crop.reshape(-1)[fast["pix"][hit] + off].astype(np.float32)

@@ -732,6 +732,15 @@ class PlaneSource:
         r0, r1, c0, c1 = self.bounds
         return r1 - r0, c1 - c0
 
+    @property
+    def step_shifts(self) -> tuple[int, int] | None:
+        """The chroma steps as bit shifts, as the compiled gather takes them, or None
+        when a step is not a power of two."""
+        if any(v & (v - 1) for v in self.step):
+            return None
+        sy, sx = (int(v).bit_length() - 1 for v in self.step)
+        return sy, sx
+
     def crop_codes(self) -> NDArray[Any]:
         """Codes of the whole crop (as :func:`code_values` builds them)."""
         r0, r1, c0, c1 = self.bounds
@@ -842,8 +851,8 @@ def _gathered_values(src: PlaneSource, table: NDArray[Any]) -> NDArray[np.float3
     from . import _jit
 
     kern = _jit.kernels()
-    if (kern is None or table.dtype != np.float32 or not table.flags.c_contiguous
-            or any(v & (v - 1) for v in src.step)):
+    shifts = src.step_shifts
+    if kern is None or table.dtype != np.float32 or not table.flags.c_contiguous or shifts is None:
         return None
     if src.chroma is not None and src.luma.dtype.itemsize != 1:
         return None
@@ -852,7 +861,7 @@ def _gathered_values(src: PlaneSource, table: NDArray[Any]) -> NDArray[np.float3
     h, w = src.shape
     vals = np.empty(h * w, np.float32)
     keys = np.empty(h * w, np.int32)
-    sy, sx = (int(v).bit_length() - 1 for v in src.step)
+    sy, sx = shifts
     kern.gather_planes(src.luma, src.chroma, int(src.bounds[0]), int(src.bounds[2]), sy, sx,
                        _row_runs(h, w), 0, 0, table, vals, keys)
     return vals.reshape(h, w)

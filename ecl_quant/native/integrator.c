@@ -471,14 +471,10 @@ ECL_EXPORT ECL_CLONES int ecl_spot_frame(
     int64_t n_gone = 0;
     int sorted = 1;
     for (int64_t j = 0; j < n_hit; j++) {
-        vals[hit[j]] = hit_values[j];
-        if (j > 0 && hit[j] <= hit[j - 1]) sorted = 0;
-    }
-    for (int64_t j = 0; j < n_hit; j++) {
         const int64_t i = hit[j];
-        if (i >= n_ap) {
-            gone[n_gone++] = i;
-        }
+        vals[i] = hit_values[j];
+        if (j > 0 && i <= hit[j - 1]) sorted = 0;
+        if (i >= n_ap) gone[n_gone++] = i;
     }
     if (!sorted && n_gone > 1) { /* ascending and distinct (insertion sort: few hits) */
         for (int64_t j = 1; j < n_gone; j++) {
