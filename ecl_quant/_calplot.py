@@ -6,13 +6,12 @@ worker processes and returns the PNG as bytes for the HTML report.
 
 from __future__ import annotations
 
-import io
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
 
-from ._io import atomic_write
+from ._io import atomic_write, figure_png
 
 if TYPE_CHECKING:
     from .calibration import Calibration
@@ -107,9 +106,7 @@ def plot_calibration(cal: Calibration, path: str | Path | None = None, *,
     axr.set_xlabel(f"concentration ({cu})")
     axr.grid(alpha=0.3)
 
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi)
-    data = buf.getvalue()
+    data = figure_png(fig, dpi=dpi)
     if path is not None:
         with atomic_write(path, "wb", encoding=None) as fh:
             fh.write(data)

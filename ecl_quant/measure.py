@@ -25,12 +25,12 @@ values are kept in ``integral_raw`` and ``peak_raw`` for inspection only).
 
 from __future__ import annotations
 
-import io
 import json
 import math
 import platform
 import sys
 import time
+from collections import deque
 from collections.abc import Iterable, Iterator
 from dataclasses import asdict, dataclass, field, replace
 from datetime import datetime, timezone
@@ -42,7 +42,7 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
-from ._io import atomic_write, ensure_dir, sha256_file, to_jsonable
+from ._io import atomic_write, ensure_dir, figure_png, sha256_file, to_jsonable
 from .curves import (
     CurveMetrics,
     CurveSettings,
@@ -94,6 +94,10 @@ _WRITING_MARKER = ".ecl-quant-writing"
 #: With spots given, the overlay projection is the max over every k-th frame, k up to
 #: this (1 below 200 frames, 2 below 300, ...; see run.json analysis.projection_every).
 PROJECTION_EVERY = 4
+#: A recording whose decoded frames fit in this many MB is decoded once when its spots
+#: are detected on every frame: the detection pass keeps its frames for the integration
+#: pass (e.g. 60 frames of 640 x 480 video: 28 MB). A longer one is decoded again.
+FRAME_CACHE_MB = 96.0
 
 
 @dataclass(frozen=True)
@@ -387,6 +391,57 @@ def _key_frames(rec: Any) -> Iterator[Any]:
         return iter(rec.frames())
 
 
+class _FrameCache:
+    """The frames of one pass over a recording, kept for the next pass while their
+    pixels fit in ``limit_mb``; beyond that nothing is kept and the next pass decodes
+    again.
+
+    Kept frames are made read-only, so a step that wrote into a frame's pixels (which
+    the next pass would then read changed) fails at once instead; the frames already
+    handed on when the limit is passed stay so.
+    """
+
+    def __init__(self, limit_mb: float) -> None:
+        self._left = int(limit_mb * 2**20)
+        self._frames: deque[Any] | None = deque()
+
+    @staticmethod
+    def _arrays(frame: Any) -> list[NDArray[Any]]:
+        arrays = [frame.data]
+        if getattr(frame, "chroma", None) is not None:
+            arrays.extend(frame.chroma)
+        for extra in (getattr(frame, "black_level", None), getattr(frame, "cfa", None)):
+            if isinstance(extra, np.ndarray):
+                arrays.append(extra)
+        return arrays
+
+    def keep(self, frames: Iterable[Any]) -> Iterator[Any]:
+        """``frames``, each kept (read-only) while the limit allows."""
+        for frame in frames:
+            if self._frames is not None:
+                arrays = self._arrays(frame)
+                self._left -= sum(a.nbytes for a in arrays)
+                if self._left < 0:
+                    self._frames = None  # too long: the next pass decodes again
+                else:
+                    for a in arrays:
+                        a.flags.writeable = False
+                    self._frames.append(frame)
+            yield frame
+
+    @property
+    def complete(self) -> bool:
+        """Whether every frame of the pass was kept."""
+        return self._frames is not None
+
+    def replay(self) -> Iterator[Any]:
+        """The kept frames in order, each let go once handed over."""
+        frames = self._frames
+        self._frames = None
+        while frames:
+            yield frames.popleft()
+
+
 def _detect_factor(rec: Any, settings: MeasureSettings) -> int:
     """Downscale factor of the detection pass: 2 for frames of 720 rows or more."""
     if settings.detect_scale is not None:
@@ -551,6 +606,9 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
     shifts: list[tuple[float, float, float, bool]] = []
     projection_sum: NDArray[np.float32] | None = None
     detection_info: dict[str, Any] = {}
+    # The integration pass decodes the recording again unless the detection pass kept
+    # every frame (a short recording, see FRAME_CACHE_MB).
+    pass2_frames: Iterator[Any] | None = None
 
     # ---------------------------------------------------------- pass 1: detection
     if spot_set is None:
@@ -636,8 +694,11 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
                             f"(need >= 8, <= {settings.detect_key_gap_s:g} s)")
             timings["detect_key_frames_s"] = time.perf_counter() - t1
         if found is None:
-            acc, hot_flat, shifts, _times = detection_pass(rec.frames(), new_tracker(),
-                                                           "detect")
+            kept = _FrameCache(FRAME_CACHE_MB)
+            acc, hot_flat, shifts, _times = detection_pass(kept.keep(rec.frames()),
+                                                           new_tracker(), "detect")
+            if kept.complete:
+                pass2_frames = kept.replay()
             if acc.n_frames == 0:
                 raise InputFormatError("the recording holds no frames", path=rec.path)
             found = find(acc)
@@ -662,6 +723,8 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
                           "projection_frames": int(acc.n_frames),
                           "key_frames": key_note,
                           "hot_pixels_masked": int(hot_flat.size),
+                          "integration_pass": ("frames kept from the detection pass"
+                                               if pass2_frames is not None else "decoded"),
                           "projection_dark": "master dark" if master is not None else
                           "first frame (no dark given)", **dict(found.provenance)}
         spot_set = SpotSet(found.spots, shape, found.backgrounds,
@@ -705,7 +768,7 @@ def _measure(source: Any, *, spots: str | Path | SpotSet | None, dark: Any,
     index = 0
     hot_fill: tuple[NDArray[np.intp], NDArray[np.intp], NDArray[np.float32]] | None = None
     with _progress(rec.n_frames, "measure", progress) as bar:
-        for frame in rec.frames():
+        for frame in (pass2_frames if pass2_frames is not None else rec.frames()):
             if n_pass1:
                 if index >= n_pass1:
                     raise InputFormatError("the recording yielded more frames on the second "
@@ -1031,9 +1094,7 @@ def render_overlay(result: MeasureResult, *, dpi: int = 100) -> bytes:
     ax.set_xlim(-0.5, w - 0.5)
     ax.set_ylim(h - 0.5, -0.5)
     ax.set_axis_off()
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi)
-    return buf.getvalue()
+    return figure_png(fig, dpi=dpi)
 
 
 def render_curves(result: MeasureResult, *, dpi: int = 100) -> bytes:
@@ -1064,9 +1125,7 @@ def render_curves(result: MeasureResult, *, dpi: int = 100) -> bytes:
         ax.legend(title="spot", fontsize=7, ncol=2, loc="upper right")
     ax.set_title("dots: onset; bars: full width at half maximum", fontsize=9)
     fig.tight_layout()
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi)
-    return buf.getvalue()
+    return figure_png(fig, dpi=dpi)
 
 
 def write_measure_outputs(result: MeasureResult, out_dir: str | Path, *,

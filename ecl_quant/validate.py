@@ -42,7 +42,6 @@ row per unknown and test blank) and ``validation.png``.
 
 from __future__ import annotations
 
-import io
 import json
 import math
 import shutil
@@ -59,7 +58,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ._io import atomic_write, ensure_dir, to_jsonable, write_json_atomic
+from ._io import atomic_write, ensure_dir, figure_png, to_jsonable, write_json_atomic
 from .errors import InputFormatError, OutputError
 
 __all__ = [
@@ -1028,9 +1027,7 @@ def render_validation_plot(result: ValidationResult, *, dpi: int = 100) -> bytes
                  f" {result.provenance['settings']['n_batches']} batches): {verdict}",
                  fontsize=10)
     fig.tight_layout(rect=(0, 0, 1, 0.96))
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi)
-    return buf.getvalue()
+    return figure_png(fig, dpi=dpi)
 
 
 

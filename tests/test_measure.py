@@ -483,3 +483,43 @@ def test_sparse_key_frames_fall_back_to_every_frame(h264_card):
     det = res.provenance["detection"]
     assert det["frames"] == "all"
     assert "key frames" in det["key_frames"] and "need >= 8" in det["key_frames"]
+
+
+@pytest.mark.parametrize("card", ["jpeg_card", "h264_card"])
+def test_kept_frames_give_the_results_of_a_second_decode(card, request, monkeypatch):
+    # A short recording is decoded once: the detection pass keeps its frames for the
+    # integration pass. Reference: the same recording decoded twice (nothing kept) must
+    # give the same numbers to the last bit (common practice: a cache changes no result).
+    import ecl_quant.measure as measure_module
+
+    source, _, kept = request.getfixturevalue(card)
+    assert kept.provenance["detection"]["integration_pass"] == \
+        "frames kept from the detection pass"
+    monkeypatch.setattr(measure_module, "FRAME_CACHE_MB", 0.5)  # too small: decode again
+    again = measure(source)
+    assert again.provenance["detection"]["integration_pass"] == "decoded"
+    pd.testing.assert_frame_equal(kept.curves_table, again.curves_table, check_exact=True)
+    pd.testing.assert_frame_equal(kept.spots_table, again.spots_table, check_exact=True)
+
+
+def test_kept_frames_are_read_only_and_let_go():
+    # A pass that wrote into a kept frame would change what the next pass reads: kept
+    # pixels are read-only, and the replay hands each frame over once (common practice).
+    from ecl_quant.frames import Frame
+    from ecl_quant.measure import _FrameCache
+
+    frames = [Frame(index=i, time_s=i / 10, data=np.full((4, 5), i, np.uint8), max_code=255.0,
+                    source="x") for i in range(3)]
+    cache = _FrameCache(1.0)
+    assert [f.index for f in cache.keep(frames)] == [0, 1, 2]
+    assert cache.complete
+    with pytest.raises(ValueError):
+        frames[1].data[0, 0] = 7
+    assert [f.index for f in cache.replay()] == [0, 1, 2]
+    assert not cache.complete and list(cache.replay()) == []
+    # Over the limit: nothing is kept, every frame still passes through.
+    small = _FrameCache(40 / 2**20)
+    more = [Frame(index=i, time_s=0.0, data=np.zeros((4, 5), np.uint8), max_code=255.0,
+                  source="x") for i in range(3)]
+    assert len(list(small.keep(more))) == 3 and not small.complete
+    more[2].data[0, 0] = 1  # the frame over the limit was not made read-only
