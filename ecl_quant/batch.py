@@ -1409,9 +1409,12 @@ def _measure_into(job: _Job, key: str, folder: Path) -> None:
     old = folder.parent / f".{folder.name}.old-{os.getpid()}-{token}"
     tmp.mkdir(parents=True)
     try:
-        result = _measure_recording(job)
+        # Opened once for measure and the QC's ambient level (a folder's headers or a
+        # video's index are read once).
+        rec = _open_job_recording(job)
+        result = _measure_recording(job, rec)
         files = _write_recording_outputs(result, tmp)
-        qc = recording_qc_metrics(result, source=job.path, channel=job.channel,
+        qc = recording_qc_metrics(result, source=rec, channel=job.channel,
                                   transfer=job.transfer)
         _write_json(tmp / "qc.json", qc)
         files.append("qc.json")
@@ -2100,7 +2103,7 @@ def _laplacian_score(z: Any, rho: Any, r: float) -> float:
     return max(float(lap.var()) - noise, 0.0) * float(r)
 
 
-def ambient_fraction(source: str | Path, *, channel: str, transfer: str,
+def ambient_fraction(source: str | Path | Any, *, channel: str, transfer: str,
                      spots: Iterable[tuple[float, float, float]] = ()) -> float:
     """Median linear level of the first frame outside the spots, as a fraction of full
     scale (per frame, not per second).
@@ -2113,7 +2116,8 @@ def ambient_fraction(source: str | Path, *, channel: str, transfer: str,
     from .frames import open_recording
     from .radiometry import linear_values
 
-    frames = open_recording(source).frames()
+    rec = source if hasattr(source, "frames") else open_recording(source)
+    frames = rec.frames()
     try:
         frame = next(frames, None)
     finally:
@@ -2129,14 +2133,14 @@ def ambient_fraction(source: str | Path, *, channel: str, transfer: str,
     return float(np.median(vals))
 
 
-def recording_qc_metrics(result: Any, *, source: str | Path, channel: str,
+def recording_qc_metrics(result: Any, *, source: str | Path | Any, channel: str,
                          transfer: str) -> dict[str, Any]:
     """Field QC numbers of one measured recording (written to ``qc.json``).
 
     Parameters
     ----------
     result : MeasureResult
-    source : str or Path
+    source : str, Path or Recording
         The recording (its first frame is read again for the ambient level).
     channel, transfer : str
 
@@ -2191,10 +2195,18 @@ def _make_settings(job: _Job) -> Any:
                            **dict(job.measure_options))
 
 
-def _measure_recording(job: _Job) -> Any:
+def _open_job_recording(job: _Job) -> Any:
+    """The job's recording, opened as measure would open it (read once, used twice)."""
+    from .frames import open_recording
+
+    settings = _make_settings(job)
+    return open_recording(job.path, fps=settings.fps, max_pixels=settings.max_pixels)
+
+
+def _measure_recording(job: _Job, rec: Any = None) -> Any:
     from .measure import measure
 
-    return measure(job.path, spots=job.spots_file, dark=job.dark,
+    return measure(job.path if rec is None else rec, spots=job.spots_file, dark=job.dark,
                    settings=_make_settings(job), progress=False)
 
 

@@ -50,12 +50,12 @@ import sys, time
 import ecl_quant.batch as batch
 real = batch._measure_recording
 count = [0]
-def slow(job):
+def slow(job, *args):
     count[0] += 1
     if count[0] == int(sys.argv[1]):
         print("PAUSED", job.rec_id, flush=True)
         time.sleep(600)
-    return real(job)
+    return real(job, *args)
 batch._measure_recording = slow
 from ecl_quant.cli import main
 sys.exit(main(sys.argv[2:]))
