@@ -679,13 +679,37 @@ def _runs_of_sorted_rows(keys: NDArray[Any], row_starts: NDArray[np.intp]
     return start, length, row, column
 
 
+def _weighted_order_stats(dev: NDArray[np.float64], w: NDArray[np.int64], lo: NDArray[np.int64],
+                          hi: NDArray[np.int64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Per row, the values at 0-based positions ``lo`` and ``hi`` of the multiset in
+    which ``dev[r, j]`` occurs ``w[r, j]`` times (entries of weight 0 are +inf in
+    ``dev`` and sort last).
+
+    The value at a position does not depend on how equal values are ordered among
+    themselves, so no stable sort is needed; when every weight is 0 or 1 (distinct
+    floats, e.g. dark-subtracted pixels) the sorted values are read directly. Both give
+    the numbers of a stable argsort with cumulative weights, ~20x faster for rows of
+    thousands of values.
+    """
+    rows = np.arange(dev.shape[0])
+    if int(w.max(initial=0)) <= 1:
+        dev_sorted = np.sort(dev, axis=1)
+        return dev_sorted[rows, lo], dev_sorted[rows, hi]
+    order = np.argsort(dev, axis=1)
+    dev_sorted = np.take_along_axis(dev, order, axis=1)
+    dcum = np.cumsum(np.take_along_axis(w, order, axis=1), axis=1)
+    return (dev_sorted[rows, np.argmax(dcum > lo[:, None], axis=1)],
+            dev_sorted[rows, np.argmax(dcum > hi[:, None], axis=1)])
+
+
 def _clip_compact(values: NDArray[np.float64], counts: NDArray[np.int64], clip_sigma: float
                   ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64],
                              NDArray[np.intp]]:
     """Iterated median/MAD clipping of rows given as distinct values with counts.
 
-    ``values`` (R, U) holds each row's distinct values in ascending order (padding:
-    +inf with count 0). Iterates at most 4 times: median and MAD (x 1.4826) of the kept
+    ``values`` (R, U) holds each row's values in ascending order, each with its count
+    (distinct values with their counts, or repeats with counts of 1: the same multiset
+    gives the same numbers up to the rounding of the sums; padding: +inf with count 0). Iterates at most 4 times: median and MAD (x 1.4826) of the kept
     values; keep every value within ``clip_sigma`` SD of the median; stop when nothing
     changes or a row would keep fewer than 3 values. Order statistics are read off the
     cumulative counts, so ties and repeated 8-bit codes are handled exactly, and every
@@ -715,11 +739,7 @@ def _clip_compact(values: NDArray[np.float64], counts: NDArray[np.int64], clip_s
         med = 0.5 * (values[rows, order_stat(cum, lo)] + values[rows, order_stat(cum, hi)])
         dist = np.abs(values - med[:, None])
         dev = np.where(keep, dist, np.inf)
-        order = np.argsort(dev, axis=1, kind="stable")
-        dev_sorted = np.take_along_axis(dev, order, axis=1)
-        dcum = np.cumsum(np.take_along_axis(w, order, axis=1), axis=1)
-        d_lo = dev_sorted[rows, order_stat(dcum, lo)]
-        d_hi = dev_sorted[rows, order_stat(dcum, hi)]
+        d_lo, d_hi = _weighted_order_stats(dev, w, lo, hi)
         sd = _MAD_TO_SD * 0.5 * (d_lo + d_hi)
         new_keep = present & (dist <= clip_sigma * sd[:, None] + 1e-30)
         new_cnt = np.where(new_keep, counts, 0).sum(axis=1)
@@ -740,14 +760,18 @@ def _clipped_rows_sorted(values: Sequence[NDArray[np.floating]], clip_sigma: flo
     """Iterated median/MAD clipping of each row of ``values`` (finite, non-empty, 1-D).
 
     The same statistics as :meth:`SpotIntegrator._clipped_stats_masked`: each row is
-    sorted, its runs of equal values become (value, count) pairs and
-    :func:`_clip_compact` clips all rows at once. Mean and SD are summed over the
-    distinct values times their counts (the same to about 1e-16 relative).
+    sorted and :func:`_clip_compact` clips all rows at once, every value an entry of
+    count 1 (repeats are not merged: float rows, e.g. dark-subtracted pixels, hold few,
+    and with counts of 1 the MAD's order statistics are read off one plain sort). Mean
+    and SD agree with the masked form to about 1e-16 relative.
     """
-    sizes = np.array([v.size for v in values], np.intp)
-    keys = np.concatenate([np.sort(v) for v in values]).astype(np.float64)
-    row_starts = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.intp)
-    return _clip_runs(keys, row_starts, clip_sigma)
+    sizes = [int(v.size) for v in values]
+    cv = np.full((len(sizes), max(sizes)), np.inf)
+    cc = np.zeros(cv.shape, np.int64)
+    for k, v in enumerate(values):
+        cv[k, :sizes[k]] = np.sort(v)
+        cc[k, :sizes[k]] = 1
+    return _clip_compact(cv, cc, clip_sigma)
 
 
 def _clip_runs(keys: NDArray[Any], row_starts: NDArray[np.intp], clip_sigma: float, *,

@@ -595,3 +595,28 @@ def test_compiled_clipping_matches_a_plain_numpy_sigma_clip():
         for k, (v, c) in enumerate(distinct):
             cv[k, :v.size], cc[k, :v.size] = v, c
         _assert_numpy_clip(rows, *kernels.clip_rows(cv, cc, width, 3.0))
+
+
+def test_weighted_order_statistics_match_a_sort_of_the_expanded_multiset():
+    # The MAD's order statistics: the value at positions lo and hi of the multiset in
+    # which each entry occurs `weight` times, read here off numpy's sort of the expanded
+    # multiset (np.repeat + np.sort, reference library), for rows with ties, repeats,
+    # and weights of 0 (entries left out, +inf).
+    from ecl_quant.curves import _weighted_order_stats
+
+    rng = np.random.default_rng(7)
+    for trial in range(200):
+        n_rows, width = int(rng.integers(1, 9)), int(rng.integers(1, 60))
+        dev = np.round(rng.exponential(1.0, (n_rows, width)), 1 if trial % 2 else 6)
+        top = 1 if trial % 3 == 0 else 4
+        w = rng.integers(0, top + 1, (n_rows, width))
+        w[:, 0] = np.maximum(w[:, 0], 1)  # every row keeps something
+        dev = np.where(w > 0, dev, np.inf)
+        total = w.sum(axis=1)
+        lo = np.maximum((total - 1) // 2, 0)
+        hi = total // 2
+        hi = np.minimum(hi, total - 1)
+        got_lo, got_hi = _weighted_order_stats(dev, w, lo, hi)
+        for r in range(n_rows):
+            expanded = np.sort(np.repeat(dev[r], w[r]))
+            assert got_lo[r] == expanded[lo[r]] and got_hi[r] == expanded[hi[r]]
