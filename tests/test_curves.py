@@ -366,9 +366,10 @@ def _assert_numpy_clip(rows, med, mean, sd, cnt):
         assert cnt[k] == c2
 
 
-def test_clipped_rows_match_a_plain_numpy_sigma_clip():
+def test_clipped_rows_match_a_plain_numpy_sigma_clip(code_path):
     # Rows of 8-bit-like values (many ties) and heavy-tailed floats, against numpy's
-    # median/mean/std applied literally.
+    # median/mean/std applied literally (the float rows of a dark-subtracted frame, by
+    # the compiled clip_rows kernel and by the numpy code).
     from ecl_quant.curves import _clipped_rows_sorted
 
     rng = np.random.default_rng(41)
