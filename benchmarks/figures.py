@@ -49,11 +49,21 @@ class Timing:
         Wall-clock time, s.
     cpu_s : float
         CPU time of this process (all threads), s.
+    busy_s : float or None
+        CPU time of the whole machine over the run (every process, from /proc/stat on
+        Linux; None elsewhere), s: counts a batch's worker processes too.
     """
 
     frames: int
     wall_s: float
     cpu_s: float
+    busy_s: float | None = None
+
+    @property
+    def cores(self) -> float | None:
+        """Cores kept busy on average (``busy_s`` / ``wall_s``), None when unknown."""
+        return self.busy_s / self.wall_s if self.busy_s is not None and self.wall_s > 0 \
+            else None
 
     @property
     def fps(self) -> float:
@@ -61,7 +71,22 @@ class Timing:
         return self.frames / self.wall_s if self.wall_s > 0 else math.nan
 
     def to_dict(self) -> dict[str, Any]:
-        return asdict(self) | {"fps": self.fps}
+        return asdict(self) | {"fps": self.fps, "cores": self.cores}
+
+
+def machine_busy_s() -> float | None:
+    """CPU seconds the machine has spent busy since boot (user, nice, system, irq,
+    softirq of /proc/stat; idle and iowait left out), or None off Linux."""
+    try:
+        with open("/proc/stat") as fh:
+            fields = fh.readline().split()
+    except OSError:
+        return None
+    if not fields or fields[0] != "cpu":
+        return None
+    ticks = [int(v) for v in fields[1:8]]
+    user, nice, system, _idle, _iowait, irq, softirq = ticks
+    return (user + nice + system + irq + softirq) / float(os.sysconf("SC_CLK_TCK"))
 
 
 class _Clock:
@@ -80,6 +105,15 @@ def video_thread_type() -> str:
     from ecl_quant import frames
 
     return str(getattr(frames, "VIDEO_THREAD_TYPE", "AUTO"))
+
+
+def video_shape(path: str | Path) -> tuple[int, int]:
+    """(rows, columns) of a video's frames."""
+    import av
+
+    with av.open(str(path)) as container:
+        ctx = container.streams.video[0].codec_context
+        return int(ctx.height), int(ctx.width)
 
 
 # ------------------------------------------------------------------ baselines
@@ -127,7 +161,23 @@ def _measure_api() -> tuple[Any, Any]:
     return measure, MeasureSettings
 
 
-def run_measure(source: Any, *, spots: str | Path | None = None) -> tuple[Timing, Any]:
+def simulated_master_dark(shape: tuple[int, int], *, seed: int = 0) -> Any:
+    """A master dark for ``shape`` frames: a dark offset of 0.4 % of full scale with a
+    fixed pattern of 0.05 % in quarter-code steps (as a median of 8-bit dark frames has),
+    the variances of 16 frames. Only its timing matters: with a dark, every pixel's value
+    is its own, so measure takes its float path."""
+    from ecl_quant.radiometry import MasterDark
+
+    rng = np.random.default_rng(seed)
+    pattern = np.round(rng.standard_normal(shape) * 4.0) / 4.0
+    level = (0.004 + 0.0005 * pattern).astype(np.float32)
+    var = np.full(shape, 1e-6, np.float32)
+    return MasterDark(level, var, var / 16.0, 16, "median",
+                      provenance={"source": "benchmarks: simulated"})
+
+
+def run_measure(source: Any, *, spots: str | Path | None = None,
+                dark: Any = None) -> tuple[Timing, Any]:
     """Time :func:`ecl_quant.measure.measure` (default settings) on one recording.
 
     Warnings are caught (and dropped): a benchmark input may well warn, e.g. a blank.
@@ -136,7 +186,8 @@ def run_measure(source: Any, *, spots: str | Path | None = None) -> tuple[Timing
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         with _Clock() as clk:
-            result = measure(source, spots=spots, settings=settings_cls(), progress=False)
+            result = measure(source, spots=spots, dark=dark, settings=settings_cls(),
+                             progress=False)
     n = int(result.curves_table["frame"].nunique()) if len(result.curves_table) else 0
     if n == 0:
         n = int(result.provenance.get("n_frames", 0) or 0)
@@ -161,15 +212,18 @@ def run_batch(manifest: str | Path, *, workers: int, scratch: Path) -> Timing:
     out = Path(tempfile.mkdtemp(prefix=f"batch-w{workers}-", dir=scratch))
     man = read_manifest(manifest)
     try:
+        busy0 = machine_busy_s()
         with _Clock() as clk:
             res = batch(man, BatchSettings(out_dir=out, workers=workers, force=True,
                                            progress=False))
+        busy1 = machine_busy_s()
         failed = res.n_failed
     finally:
         shutil.rmtree(out, ignore_errors=True)
     if failed:
         raise RuntimeError(f"batch with {workers} worker(s): {failed} recording(s) failed")
-    return Timing(len(man.recordings), clk.wall, clk.cpu)
+    busy = busy1 - busy0 if busy0 is not None and busy1 is not None else None
+    return Timing(len(man.recordings), clk.wall, clk.cpu, busy)
 
 
 def run_calibration(table: str | Path, *, n_draws: int, model: str = "auto") -> dict[str, float]:
