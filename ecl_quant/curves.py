@@ -685,17 +685,19 @@ def _weighted_order_stats(dev: NDArray[np.float64], w: NDArray[np.int64], lo: ND
     which ``dev[r, j]`` occurs ``w[r, j]`` times (entries of weight 0 are +inf in
     ``dev`` and sort last).
 
-    The value at a position does not depend on how equal values are ordered among
-    themselves, so no stable sort is needed; when every weight is 0 or 1 (distinct
-    floats, e.g. dark-subtracted pixels) the sorted values are read directly. Both give
-    the numbers of a stable argsort with cumulative weights, ~20x faster for rows of
-    thousands of values.
+    When every weight is 0 or 1 (float rows, e.g. dark-subtracted pixels) the values
+    are read off one plain sort: the value at a position does not depend on how equal
+    values are ordered among themselves, so this gives the numbers of the argsort with
+    cumulative weights, without the argsort, the gathers and the cumulative sum (rows of
+    5,000 to 20,000 distances: 1.5x to 1.7x faster for the sort alone). Else the
+    argsort is stable: the distances of sorted values fall then rise, two runs that a
+    stable sort merges faster than the default one sorts them.
     """
     rows = np.arange(dev.shape[0])
     if int(w.max(initial=0)) <= 1:
         dev_sorted = np.sort(dev, axis=1)
         return dev_sorted[rows, lo], dev_sorted[rows, hi]
-    order = np.argsort(dev, axis=1)
+    order = np.argsort(dev, axis=1, kind="stable")
     dev_sorted = np.take_along_axis(dev, order, axis=1)
     dcum = np.cumsum(np.take_along_axis(w, order, axis=1), axis=1)
     return (dev_sorted[rows, np.argmax(dcum > lo[:, None], axis=1)],
@@ -705,13 +707,14 @@ def _weighted_order_stats(dev: NDArray[np.float64], w: NDArray[np.int64], lo: ND
 def _clip_compact(values: NDArray[np.float64], counts: NDArray[np.int64], clip_sigma: float
                   ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64],
                              NDArray[np.intp]]:
-    """Iterated median/MAD clipping of rows given as distinct values with counts.
+    """Iterated median/MAD clipping of rows given as values with counts.
 
     ``values`` (R, U) holds each row's values in ascending order, each with its count
     (distinct values with their counts, or repeats with counts of 1: the same multiset
-    gives the same numbers up to the rounding of the sums; padding: +inf with count 0). Iterates at most 4 times: median and MAD (x 1.4826) of the kept
-    values; keep every value within ``clip_sigma`` SD of the median; stop when nothing
-    changes or a row would keep fewer than 3 values. Order statistics are read off the
+    gives the same numbers up to the rounding of the sums; padding: +inf with count 0).
+    Iterates at most 4 times: median and MAD (x 1.4826) of the kept values; keep every
+    value within ``clip_sigma`` SD of the median; stop when nothing changes or a row
+    would keep fewer than 3 values. Order statistics are read off the
     cumulative counts, so ties and repeated 8-bit codes are handled exactly, and every
     row is processed at once.
 
