@@ -26,13 +26,12 @@ __all__ = ["to_jsonable", "atomic_write", "write_text_atomic", "write_json_atomi
 PNG_COMPRESS_LEVEL = 3
 
 
-def figure_png(fig: Any, *, dpi: float, **savefig: Any) -> bytes:
+def figure_png(fig: Any, *, dpi: float) -> bytes:
     """A Matplotlib figure as PNG bytes (rendered in memory; write them atomically)."""
     import io
 
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi,
-                pil_kwargs={"compress_level": PNG_COMPRESS_LEVEL}, **savefig)
+    fig.savefig(buf, format="png", dpi=dpi, pil_kwargs={"compress_level": PNG_COMPRESS_LEVEL})
     return buf.getvalue()
 
 
