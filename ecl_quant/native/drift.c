@@ -151,14 +151,15 @@ ECL_EXPORT ECL_CLONES int ecl_drift_quarter_sums(const void *src, int64_t kind,
                                                  int64_t stride_row, int64_t oh, int64_t ow,
                                                  void *out) {
     if (kind != ECL_U8 && kind != ECL_U16) return -2;
+#if defined(__SSE2__)
+    if (kind == ECL_U8) { /* needs no row buffers */
+        quarter_u8_sse2((const char *)src, stride_row, oh, ow, (uint16_t *)out);
+        return 0;
+    }
+#endif
     uint32_t *buf = malloc(sizeof(uint32_t) * (size_t)(10 * ow + 1));
     if (buf == NULL) return -1;
     if (kind == ECL_U8) {
-#if defined(__SSE2__)
-        free(buf);
-        quarter_u8_sse2((const char *)src, stride_row, oh, ow, (uint16_t *)out);
-        return 0;
-#endif
         uint16_t *b = (uint16_t *)buf;
         quarter_u8((const char *)src, stride_row, oh, ow, (uint16_t *)out, b, b + 4 * ow,
                    b + 8 * ow);
